@@ -1,0 +1,62 @@
+"""The ``noiseproof`` command line: parse, validate once, call the engines.
+
+Every subcommand lives in ``noiseproof/commands/<name>.py`` and exposes
+``register(subparsers)``, which adds its parser and sets ``func(args) -> int``.
+Only the :class:`~estimators.core.NoiseproofError` family is caught here: it is
+printed as one line on stderr and the exit status is 2. Anything else is a bug
+and keeps its traceback.
+"""
+from __future__ import annotations
+
+import argparse
+import sys
+from typing import Optional, Sequence
+
+from estimators.core import NoiseproofError
+
+from .commands import COMMANDS
+
+DESCRIPTION = (
+    "Evidence that an optimised portfolio allocation is not an artefact of noisy inputs: "
+    "resample alternative histories, re-estimate and re-optimise on each, backtest against 1/N, "
+    "and write an evidence pack. Decision support, not investment advice."
+)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="noiseproof",
+        description=DESCRIPTION,
+        epilog="Run 'noiseproof COMMAND --help' for a command's options.",
+    )
+    parser.add_argument("--version", action="store_true", help="print the version and exit")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for module in COMMANDS:
+        module.register(sub)
+    return parser
+
+
+def main(argv: Optional[Sequence[str]] = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.version:
+        from importlib.metadata import version
+
+        print(f"noiseproof {version('noiseproof')}")
+        return 0
+    if not getattr(args, "command", None):
+        parser.print_help()
+        return 2
+    try:
+        return int(args.func(args) or 0)
+    except NoiseproofError as exc:
+        message = " ".join(str(exc).split())
+        print(f"noiseproof: error: {message}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("noiseproof: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,13 @@
+"""`noiseproof demo`: not built yet."""
+from __future__ import annotations
+
+from estimators.core import NoiseproofError
+
+
+def register(sub) -> None:
+    p = sub.add_parser("demo", help="(not built yet)")
+    p.set_defaults(func=run)
+
+
+def run(args) -> int:
+    raise NoiseproofError("'noiseproof demo' is not built yet")

@@ -1,0 +1,13 @@
+"""`noiseproof study`: not built yet."""
+from __future__ import annotations
+
+from estimators.core import NoiseproofError
+
+
+def register(sub) -> None:
+    p = sub.add_parser("study", help="(not built yet)")
+    p.set_defaults(func=run)
+
+
+def run(args) -> int:
+    raise NoiseproofError("'noiseproof study' is not built yet")
