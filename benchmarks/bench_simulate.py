@@ -1,0 +1,262 @@
+"""Resampling engine throughput, side by side with per-draw loops and the machine's floor.
+
+End to end per draw: generate a normal history (T = 120), estimate the sample mean and
+covariance, solve the long-only (full-budget) mean-variance rule (gamma = 3), score the
+weights under the population. Measured in one run:
+
+* engine, one core (BLAS limited to one thread) and on two local worker processes;
+* (a) a straightforward per-draw loop: numpy generation and estimation, scipy's SLSQP
+  (timed on a subset of draws);
+* (b) the same loop with quadprog's dense Goldfarb-Idnani solver instead of SLSQP;
+* the floor: drawing the normals and doing the matrix products the history path needs
+  (Z L', the scatter matrix), with this machine's matrix-multiply and random-number rates.
+
+Also the start-up time of a fresh process running a tiny study, with an empty numba cache
+(cold) and with the cache filled (warm).
+
+``python -m benchmarks simulate [--quick] [--sizes 10,50,200]``
+"""
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import os
+import platform
+import subprocess
+import sys
+import tempfile
+import time
+
+import numpy as np
+
+TARGETS = {10: 40_000, 50: 8_000, 200: 1_000}
+LENGTH = 120
+GAMMA = 3.0
+
+
+def recipe(n):
+    """Recipe A of REFERENCES.md §0 (vol 0.04 + 0.004 i, corr 0.5^|i-j|, mu 0.005 + 0.0005 i)."""
+    i = np.arange(n)
+    vol = 0.04 + 0.004 * i
+    corr = 0.5 ** np.abs(i[:, None] - i[None, :])
+    return 0.005 + 0.0005 * i, corr * np.outer(vol, vol)
+
+
+def _cpu_name():
+    try:
+        with open("/proc/cpuinfo") as f:
+            for line in f:
+                if line.startswith("model name"):
+                    return line.split(":", 1)[1].strip()
+    except OSError:
+        pass
+    return platform.processor() or "unknown"
+
+
+def _load():
+    try:
+        return "%.2f %.2f %.2f" % os.getloadavg()
+    except OSError:
+        return "n/a"
+
+
+# ------------------------------------------------------------------ machine rates
+
+def machine_rates():
+    from threadpoolctl import threadpool_limits
+
+    rng = np.random.default_rng(0)
+    with threadpool_limits(1):
+        a = rng.standard_normal((600, 600))
+        a @ a
+        reps = 5
+        t = time.perf_counter()
+        for _ in range(reps):
+            a @ a
+        gemm = 2 * 600 ** 3 * reps / (time.perf_counter() - t) / 1e9
+        buf = np.empty(2_000_000)
+        rng.standard_normal(out=buf)
+        t = time.perf_counter()
+        for _ in range(5):
+            rng.standard_normal(out=buf)
+        normals = 5 * buf.size / (time.perf_counter() - t)
+    return gemm, normals
+
+
+def floor_rate(n, draws):
+    """Draws/s of: T x N normals, Z L' + mu, and the scatter matrix X'X (chunks of 125)."""
+    from threadpoolctl import threadpool_limits
+
+    mu, cov = recipe(n)
+    lt = np.ascontiguousarray(np.linalg.cholesky(cov).T)
+    rng = np.random.default_rng(1)
+    d = 125
+    with threadpool_limits(1):
+        t = time.perf_counter()
+        done = 0
+        while done < draws:
+            z = rng.standard_normal((d * LENGTH, n))
+            x = z @ lt
+            x += mu
+            x = x.reshape(d, LENGTH, n)
+            np.matmul(x.transpose(0, 2, 1), x)
+            done += d
+        return done / (time.perf_counter() - t)
+
+
+# ------------------------------------------------------------------ per-draw loops
+
+def _draw_and_estimate(rng, lt, mu, n):
+    x = rng.standard_normal((LENGTH, n)) @ lt + mu
+    return x.mean(axis=0), np.cov(x, rowvar=False)
+
+
+def _score(w, mu, cov):
+    return w @ mu - 0.5 * GAMMA * w @ cov @ w
+
+
+def slsqp_loop(n, draws):
+    from scipy.optimize import minimize
+    from threadpoolctl import threadpool_limits
+
+    mu, cov = recipe(n)
+    lt = np.ascontiguousarray(np.linalg.cholesky(cov).T)
+    rng = np.random.default_rng(2)
+    cons = ({"type": "eq", "fun": lambda w: w.sum() - 1.0, "jac": lambda w: np.ones_like(w)},)
+    with threadpool_limits(1):
+        t = time.perf_counter()
+        for _ in range(draws):
+            m, s = _draw_and_estimate(rng, lt, mu, n)
+            res = minimize(lambda w: -(w @ m - 0.5 * GAMMA * w @ s @ w), np.full(n, 1.0 / n),
+                           jac=lambda w: -(m - GAMMA * s @ w), method="SLSQP",
+                           bounds=[(0.0, 1.0)] * n, constraints=cons,
+                           options={"maxiter": 500, "ftol": 1e-12})
+            _score(res.x, mu, cov)
+        return draws / (time.perf_counter() - t)
+
+
+def quadprog_loop(n, draws):
+    import quadprog
+    from threadpoolctl import threadpool_limits
+
+    mu, cov = recipe(n)
+    lt = np.ascontiguousarray(np.linalg.cholesky(cov).T)
+    rng = np.random.default_rng(3)
+    c = np.hstack([np.ones((n, 1)), np.eye(n)])
+    b = np.hstack([[1.0], np.zeros(n)])
+    with threadpool_limits(1):
+        t = time.perf_counter()
+        for _ in range(draws):
+            m, s = _draw_and_estimate(rng, lt, mu, n)
+            w = quadprog.solve_qp(GAMMA * s, m, c, b, meq=1)[0]
+            _score(w, mu, cov)
+        return draws / (time.perf_counter() - t)
+
+
+# ------------------------------------------------------------------ the engine
+
+def _spec(n, draws):
+    from optimise import make_rule
+    from simulate import ResampleSpec, RuleSpec
+
+    mu, cov = recipe(n)
+    assets = tuple(f"asset{i}" for i in range(n))
+    rules = (RuleSpec(make_rule("equal-weight", "equal-weight", {}, assets)),
+             RuleSpec(make_rule("mv", "mean-variance", {"risk_aversion": GAMMA}, assets),
+                      "sample", "sample"))
+    return ResampleSpec(mu, cov, None, assets, rules, "normal", draws, LENGTH, 1, GAMMA,
+                        frontier_points=0, attribution=False, self_check_draws=0,
+                        block_size=1000)
+
+
+def engine_rate(n, draws, workers):
+    from dataclasses import replace
+
+    from threadpoolctl import threadpool_limits
+
+    from simulate import run_resampling
+
+    spec = _spec(n, draws)
+    with threadpool_limits(1):
+        run_resampling(replace(spec, draws=250))          # compile / warm caches
+        t = time.perf_counter()
+        run_resampling(spec, workers=workers)
+        return draws / (time.perf_counter() - t)
+
+
+_STARTUP = (
+    "import time; t = time.perf_counter();"
+    "import numpy as np;"
+    "from benchmarks.bench_simulate import _spec;"
+    "from simulate import run_resampling;"
+    "run_resampling(_spec(5, 125));"
+    "print(time.perf_counter() - t)"
+)
+
+
+def startup_times():
+    """(cold, warm) seconds for a fresh process to import and run a 125-draw study."""
+    with tempfile.TemporaryDirectory() as cache:
+        env = dict(os.environ, NUMBA_CACHE_DIR=cache)
+        root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+        out = []
+        for _ in range(2):
+            r = subprocess.run([sys.executable, "-c", _STARTUP], env=env, cwd=root,
+                               capture_output=True, text=True, check=True)
+            out.append(float(r.stdout.strip().splitlines()[-1]))
+    return out[0], out[1]
+
+
+# ------------------------------------------------------------------ main
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(prog="bench_simulate", description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="fewer draws (for a smoke run)")
+    ap.add_argument("--sizes", default="10,50,200", help="asset counts, comma separated")
+    ap.add_argument("--no-startup", action="store_true", help="skip the cold/warm start-up run")
+    args = ap.parse_args(argv)
+    sizes = [int(s) for s in args.sizes.split(",") if s]
+    scale = 0.2 if args.quick else 1.0
+
+    print(f"date       {dt.datetime.now(dt.timezone.utc):%Y-%m-%d %H:%M} UTC")
+    print(f"machine    {_cpu_name()}, {os.cpu_count()} logical cores, {platform.system()} "
+          f"{platform.release()}, Python {platform.python_version()}, numpy {np.__version__}")
+    print(f"load avg   {_load()} (before)")
+    gemm, normals = machine_rates()
+    print(f"rates      matmul {gemm:.1f} GFLOP/s (600x600, one thread); "
+          f"normals {normals / 1e6:.1f} M/s (numpy PCG64 standard_normal)")
+    if not args.no_startup:
+        cold, warm = startup_times()
+        print(f"start-up   cold {cold:.2f} s (empty numba cache), warm {warm:.2f} s (cached), "
+              f"import + 125-draw study in a fresh process")
+    rows = []
+    for n in sizes:
+        d_engine = int({10: 40_000, 50: 10_000, 200: 1_000}.get(n, 2_000) * scale) or 250
+        d_slsqp = max(3, int({10: 200, 50: 40, 200: 4}.get(n, 10) * scale))
+        d_qp = max(10, int({10: 3000, 50: 1000, 200: 100}.get(n, 200) * scale))
+        one = engine_rate(n, d_engine, 1)
+        two = engine_rate(n, d_engine, 2)
+        fl = floor_rate(n, max(250, d_engine // 2))
+        sl = slsqp_loop(n, d_slsqp)
+        qp = quadprog_loop(n, d_qp)
+        rows.append((n, one, two, fl, sl, qp))
+        print(f"  N={n}: done (engine {d_engine} draws, SLSQP {d_slsqp}, quadprog {d_qp})",
+              flush=True)
+    print()
+    head = ("N", "engine 1 core", "engine 2 workers", "2w/1w", "SLSQP loop", "quadprog loop",
+            "floor", "engine/quadprog", "engine/floor", "target 1 core", "met")
+    print(" | ".join(head))
+    print(" | ".join("---" for _ in head))
+    for n, one, two, fl, sl, qp in rows:
+        target = TARGETS.get(n)
+        print(" | ".join([str(n), f"{one:,.0f}", f"{two:,.0f}", f"{two / one:.2f}x", f"{sl:,.1f}",
+                          f"{qp:,.0f}", f"{fl:,.0f}", f"{one / qp:.2f}x", f"{one / fl:.2f}",
+                          f"{target:,}" if target else "-",
+                          ("yes" if one >= target else "no") if target else "-"]))
+    print("(draws per second; T = 120, long-only mean-variance, sample estimates, gamma = 3)")
+    print(f"load avg   {_load()} (after)")
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

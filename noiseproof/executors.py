@@ -1,0 +1,287 @@
+"""Where blocks of draws run: this process, local worker processes, or a Dask cluster.
+
+Every executor runs the same pure task ``fn(*args)`` and hands back a future that supports
+``add_done_callback``, ``result()`` and ``cancel()``. Seeds live in the study's resampling
+spec, so which executor ran a block, on how many workers and in which order, cannot change a
+digit of the result.
+
+Nothing here imports numpy or Dask at module level: worker processes import this module to
+run their initialiser, and Dask is an optional extra (``pip install 'noiseproof[dask]'``).
+"""
+from __future__ import annotations
+
+import multiprocessing
+import os
+import signal
+import time
+from concurrent.futures import Future, ProcessPoolExecutor
+from typing import Any, Callable, Optional
+
+from estimators.core import SettingsError
+
+__all__ = [
+    "InlineExecutor",
+    "ProcessExecutor",
+    "DaskExecutor",
+    "make_executor",
+    "run_blocks_task",
+    "WorkerLost",
+]
+
+#: Threading knobs set to 1 inside worker processes so that N workers use N cores
+#: (BLAS and numba would otherwise each start one thread per core).
+_THREAD_VARIABLES = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
+                     "NUMBA_NUM_THREADS", "VECLIB_MAXIMUM_THREADS")
+
+
+class WorkerLost(Exception):
+    """A worker process died while it held a task (killed, out of memory)."""
+
+
+def run_blocks_task(run_block: Callable, to_bytes: Callable, spec: Any, indices: tuple,
+                    delay: float = 0.0) -> list:
+    """The unit of work sent to a worker: run blocks ``indices`` of ``spec``.
+
+    Parameters
+    ----------
+    run_block : callable
+        Pure ``run_block(spec, index) -> BlockResult`` (module-level, so it pickles by name).
+    to_bytes : callable
+        ``to_bytes(block_result) -> bytes``: the durable, checksummed form.
+    spec : object
+        The study's resampling spec (seeds included).
+    indices : tuple of int
+        Consecutive block indices (usually one; ``--blocks-per-task`` groups several).
+    delay : float, default 0
+        Seconds to sleep before each block (test hook ``NOISEPROOF_BATCH_BLOCK_DELAY``:
+        slows a run down so that fault tests can interrupt it mid-way).
+
+    Returns
+    -------
+    list of bytes
+        One payload per index, in the order given.
+    """
+    out = []
+    for i in indices:
+        if delay > 0:
+            time.sleep(delay)
+        out.append(to_bytes(run_block(spec, i)))
+    return out
+
+
+def _worker_init() -> None:
+    """Initialise a local worker process: one thread each, Ctrl-C handled by the parent."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    for name in _THREAD_VARIABLES:
+        os.environ[name] = "1"
+    try:  # numba may already be imported (by unpickling a task's module); cap its pool
+        import numba
+
+        numba.set_num_threads(1)
+    except Exception:  # pragma: no cover - numba missing or already running threads
+        pass
+    try:
+        from threadpoolctl import threadpool_limits
+
+        threadpool_limits(1)
+    except Exception:  # pragma: no cover - optional
+        pass
+
+
+class InlineExecutor:
+    """Runs each task at submission, in this process (``--workers 1``)."""
+
+    kind = "inline"
+    slots = 1
+
+    def describe(self) -> str:
+        return "1 worker (this process)"
+
+    def share(self, obj, key: str = ""):
+        return obj
+
+    def unshare(self, ref) -> None:
+        return None
+
+    def submit(self, fn, *args, key: str = "") -> Future:
+        fut: Future = Future()
+        try:
+            fut.set_result(fn(*args))
+        except (KeyboardInterrupt, SystemExit):
+            raise
+        except BaseException as exc:  # handed to the caller through the future
+            fut.set_exception(exc)
+        return fut
+
+    def restart(self) -> None:
+        return None
+
+    def close(self) -> None:
+        return None
+
+
+class ProcessExecutor:
+    """A pool of local worker processes (``--workers N``).
+
+    Workers start through ``forkserver`` (``spawn`` where that is missing), never ``fork``:
+    a forked child would inherit the batch's lock and the parent's threads. Each worker
+    runs single-threaded BLAS and numba so that N workers use N cores.
+    """
+
+    kind = "processes"
+
+    def __init__(self, workers: int, *, preload: tuple = ()):
+        if workers < 1:
+            raise SettingsError(f"--workers must be at least 1, not {workers}")
+        self.slots = int(workers)
+        method = "forkserver" if "forkserver" in multiprocessing.get_all_start_methods() else "spawn"
+        self._ctx = multiprocessing.get_context(method)
+        if method == "forkserver" and preload:
+            # modules imported once by the fork server, so each worker (and each restart
+            # after a dead worker) starts without importing them again
+            self._ctx.set_forkserver_preload(["__main__", *preload])
+        self._pool = self._new_pool()
+
+    def _new_pool(self) -> ProcessPoolExecutor:
+        return ProcessPoolExecutor(max_workers=self.slots, mp_context=self._ctx,
+                                   initializer=_worker_init)
+
+    def describe(self) -> str:
+        return f"{self.slots} local worker process{'es' if self.slots != 1 else ''}"
+
+    def share(self, obj, key: str = ""):
+        return obj
+
+    def unshare(self, ref) -> None:
+        return None
+
+    def submit(self, fn, *args, key: str = "") -> Future:
+        return self._pool.submit(fn, *args)
+
+    def restart(self) -> None:
+        """Replace a pool broken by a dead worker (its pending futures have failed)."""
+        try:
+            self._pool.shutdown(wait=False, cancel_futures=True)
+        finally:
+            self._pool = self._new_pool()
+
+    def close(self) -> None:
+        self._pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _hold(obj):
+    """Identity task: keeps a study's spec on the cluster, recomputable if its worker dies."""
+    return obj
+
+
+def _import_distributed():
+    try:
+        import distributed  # noqa: F401
+    except ImportError:
+        raise SettingsError(
+            "the Dask executor needs the 'dask' extra: pip install 'noiseproof[dask]'") from None
+    return distributed
+
+
+class DaskExecutor:
+    """Blocks as tasks on a Dask distributed cluster.
+
+    ``address`` connects to an existing scheduler (``--scheduler``); ``local_workers``
+    starts a local cluster of that many single-threaded worker processes
+    (``--dask-local``); ``client`` uses a client the caller owns (tests, notebooks).
+
+    A worker that dies mid-block loses nothing but time: the scheduler reruns the task
+    elsewhere (up to the cluster's ``allowed-failures``), and the spec each block needs is
+    held by a recomputable task rather than scattered data, so it survives the death too.
+    Worker machines need noiseproof installed (the same version as the client).
+    """
+
+    kind = "dask"
+
+    def __init__(self, *, address: Optional[str] = None, local_workers: Optional[int] = None,
+                 client=None, connect_timeout: float = 20.0):
+        distributed = _import_distributed()
+        self._cluster = None
+        self._own_client = client is None
+        if client is not None:
+            self._client = client
+        elif address is not None:
+            try:
+                self._client = distributed.Client(address, timeout=f"{connect_timeout}s")
+            except (OSError, TimeoutError) as exc:
+                raise SettingsError(
+                    f"cannot reach the Dask scheduler at {address} ({exc.__class__.__name__})"
+                ) from None
+        else:
+            n = int(local_workers or 1)
+            if n < 1:
+                raise SettingsError(f"--dask-local must be at least 1, not {n}")
+            import logging
+
+            env = {name: "1" for name in _THREAD_VARIABLES}
+            self._cluster = distributed.LocalCluster(
+                n_workers=n, threads_per_worker=1, processes=True, dashboard_address=None,
+                silence_logs=logging.ERROR, env=env)
+            self._client = distributed.Client(self._cluster)
+        self._address = address
+        info = self._client.scheduler_info()
+        self.slots = max(1, sum(int(w.get("nthreads", 1)) for w in info.get("workers", {}).values()))
+        self._n_workers = len(info.get("workers", {}))
+
+    @property
+    def client(self):
+        return self._client
+
+    def describe(self) -> str:
+        where = f"scheduler {self._address}" if self._address else "a local cluster"
+        return f"Dask, {self._n_workers} workers / {self.slots} threads on {where}"
+
+    def share(self, obj, key: str = ""):
+        return self._client.submit(_hold, obj, key=f"noiseproof-spec-{key}-{time.time_ns()}",
+                                   pure=False)
+
+    def unshare(self, ref) -> None:
+        try:
+            ref.release()
+        except Exception:  # pragma: no cover - already released or client closing
+            pass
+
+    def submit(self, fn, *args, key: str = ""):
+        return self._client.submit(fn, *args, key=f"noiseproof-{key}-{time.time_ns()}",
+                                   pure=False)
+
+    def restart(self) -> None:
+        return None
+
+    def close(self) -> None:
+        if self._own_client:
+            self._client.close()
+        if self._cluster is not None:
+            self._cluster.close()
+
+
+def make_executor(*, workers: Optional[int] = None, scheduler: Optional[str] = None,
+                  dask_local: Optional[int] = None, preload: tuple = ()):
+    """The executor the command-line options ask for (validated here, once)."""
+    if scheduler is not None and dask_local is not None:
+        raise SettingsError("give --scheduler or --dask-local, not both")
+    if scheduler is not None or dask_local is not None:
+        if workers is not None:
+            raise SettingsError("--workers is for local processes; with Dask the cluster's "
+                                "workers are used")
+        return DaskExecutor(address=scheduler, local_workers=dask_local)
+    n = (os.cpu_count() or 1) if workers is None else int(workers)
+    if n < 1:
+        raise SettingsError(f"--workers must be at least 1, not {n}")
+    return InlineExecutor() if n == 1 else ProcessExecutor(n, preload=preload)
+
+
+def is_worker_lost(exc: BaseException) -> bool:
+    """True when a local worker process died under the task (the pool must be restarted).
+
+    Dask retries tasks of dead workers by itself; its ``KilledWorker`` (raised after the
+    cluster's ``allowed-failures``) is a failure of the study, not a case for this.
+    """
+    from concurrent.futures.process import BrokenProcessPool
+
+    return isinstance(exc, (BrokenProcessPool, WorkerLost))

@@ -1,0 +1,862 @@
+"""Numba kernels of the optimiser: a primal active-set QP solver and its batch drivers.
+
+Everything here works on clean float64 arrays that the public layer (``optimise.rules``)
+has validated. Each kernel is a plain Python function wrapped by :func:`numba.njit`
+(``cache=True``); the undecorated function is reachable as ``kernel.py_func`` and a test
+runs both on the same problems and compares the results.
+
+The quadratic programme solved by :func:`qp_solve` is::
+
+    minimise    1/2 x' H x - c' x
+    subject to  lb <= x <= ub                 (per variable, entries may be -inf / +inf)
+                lo <= A x <= hi               (M general rows; lo == hi is an equality)
+
+``H`` is symmetric positive semidefinite. The method is a primal active-set method
+(Nocedal & Wright 2006, *Numerical Optimization*, 2nd ed., algorithm 16.3) on a working
+set made of variables fixed at a bound and general rows held at one side. Each
+equality-constrained subproblem is solved through a Cholesky factor of the free block
+``H_FF`` and the Schur complement of the working rows. When ``H_FF`` is numerically
+singular a tiny ridge (``1e-12`` of the largest diagonal entry) is added to compute the
+step only: such a step is a descent direction of (almost) zero curvature and is cut by the
+ratio test. An unblocked ridge step whose stationarity error exceeds the tolerance means
+the problem has no bounded solution in that direction and is reported as ``SINGULAR``.
+
+Multiplier conventions (stationarity ``H x - c + A' nu - z = 0``):
+
+* ``z[i] > 0`` only at a lower bound, ``z[i] < 0`` only at an upper bound;
+* ``nu[k] < 0`` only when row ``k`` sits at ``lo[k]``, ``nu[k] > 0`` only at ``hi[k]``.
+
+Status codes: 0 optimal, 1 iteration limit, 2 singular (unbounded along a zero-curvature
+direction), 3 the start point is infeasible, 4 target out of reach (target-volatility),
+5 no convergence (equal risk contribution).
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit
+
+OK = 0
+MAXITER = 1
+SINGULAR = 2
+BAD_START = 3
+OUT_OF_REACH = 4
+NO_CONVERGENCE = 5
+
+_PIVOT_TOL = 1e-13   # relative pivot below which H_FF counts as singular
+_RIDGE = 1e-12       # ridge, relative to the largest diagonal entry of H
+
+
+# ----------------------------------------------------------------------------------------
+# small dense linear algebra on index subsets
+# ----------------------------------------------------------------------------------------
+def _chol_subset(H, idx, nf, L, ridge, piv_tol):
+    """Cholesky factor of H[idx[:nf]][:, idx[:nf]] + ridge*I into L[:nf, :nf].
+
+    Returns False when a pivot falls below ``piv_tol`` (numerically singular).
+    """
+    for a in range(nf):
+        ia = idx[a]
+        for b in range(a + 1):
+            ib = idx[b]
+            s = H[ia, ib]
+            if a == b:
+                s += ridge
+            for k in range(b):
+                s -= L[a, k] * L[b, k]
+            if a == b:
+                if s <= piv_tol:
+                    return False
+                L[a, a] = math.sqrt(s)
+            else:
+                L[a, b] = s / L[b, b]
+    return True
+
+
+def _chol_solve(L, n, v):
+    """Solve (L L') y = v in place on v[:n]."""
+    for a in range(n):
+        s = v[a]
+        for k in range(a):
+            s -= L[a, k] * v[k]
+        v[a] = s / L[a, a]
+    for a in range(n - 1, -1, -1):
+        s = v[a]
+        for k in range(a + 1, n):
+            s -= L[k, a] * v[k]
+        v[a] = s / L[a, a]
+
+
+# ----------------------------------------------------------------------------------------
+# the equality-constrained subproblem on the current working set
+# ----------------------------------------------------------------------------------------
+def _eqp(H, c, A, lo, hi, x, vs, rs, hscale, idx, ridx, L, V, S, LS, u, t, xs, nu):
+    """Minimiser of the objective with the working set held at equality.
+
+    Writes the free-variable solution into ``xs[:nf]`` (ordered as ``idx``) and the
+    working-row multipliers into ``nu`` (zero for rows outside the working set).
+
+    Returns (nf, nr, ridge_used, code) where code is 0 on success, ``k + 1`` when working
+    row ``k`` turned out to depend on the other working constraints (the caller repairs
+    the working set and calls again).
+    """
+    n = H.shape[0]
+    m = A.shape[0]
+    nf = 0
+    for i in range(n):
+        if vs[i] == 0:
+            idx[nf] = i
+            nf += 1
+    nr = 0
+    for k in range(m):
+        nu[k] = 0.0
+        if rs[k] != 0:
+            ridx[nr] = k
+            nr += 1
+    # right-hand side c_F - H_FB x_B
+    for a in range(nf):
+        u[a] = c[idx[a]]
+    for j in range(n):
+        if vs[j] != 0 and x[j] != 0.0:
+            xj = x[j]
+            for a in range(nf):
+                u[a] -= H[j, idx[a]] * xj
+    ridge = 0.0
+    if nf > 0:
+        if not _chol_subset(H, idx, nf, L, 0.0, _PIVOT_TOL * hscale):
+            ridge = _RIDGE * hscale
+            if not _chol_subset(H, idx, nf, L, ridge, 0.0):
+                ridge = 1e-8 * hscale
+                _chol_subset(H, idx, nf, L, ridge, 0.0)
+        _chol_solve(L, nf, u)
+    if nr == 0:
+        for a in range(nf):
+            xs[a] = u[a]
+        return nf, nr, ridge > 0.0, 0
+    # V = H_FF^-1 A_RF',  S = A_RF V,  t = A_RF u - (b_R - A_RB x_B)
+    amax = 0.0
+    for r in range(nr):
+        k = ridx[r]
+        for a in range(nf):
+            V[a, r] = A[k, idx[a]]
+            if abs(V[a, r]) > amax:
+                amax = abs(V[a, r])
+        if nf > 0:
+            _chol_solve_col(L, nf, V, r)
+    for r in range(nr):
+        k = ridx[r]
+        for q in range(r + 1):
+            s = 0.0
+            for a in range(nf):
+                s += A[k, idx[a]] * V[a, q]
+            S[r, q] = s
+            S[q, r] = s
+        b = lo[k] if rs[k] < 0 else hi[k]
+        s = -b
+        for j in range(n):
+            if vs[j] != 0:
+                s += A[k, j] * x[j]
+        for a in range(nf):
+            s += A[k, idx[a]] * u[a]
+        t[r] = s
+    # Cholesky of S with a dependency check row by row
+    sdiag = 0.0
+    for r in range(nr):
+        if S[r, r] > sdiag:
+            sdiag = S[r, r]
+    tol = 1e-12 * sdiag + 1e-300
+    for r in range(nr):
+        for q in range(r + 1):
+            s = S[r, q]
+            for k2 in range(q):
+                s -= LS[r, k2] * LS[q, k2]
+            if r == q:
+                if s <= tol:
+                    return nf, nr, ridge > 0.0, ridx[r] + 1
+                LS[r, r] = math.sqrt(s)
+            else:
+                LS[r, q] = s / LS[q, q]
+    _chol_solve(LS, nr, t)
+    for r in range(nr):
+        nu[ridx[r]] = t[r]
+    for a in range(nf):
+        s = u[a]
+        for r in range(nr):
+            s -= V[a, r] * t[r]
+        xs[a] = s
+    return nf, nr, ridge > 0.0, 0
+
+
+def _chol_solve_col(L, n, V, col):
+    """Solve (L L') y = V[:n, col] in place."""
+    for a in range(n):
+        s = V[a, col]
+        for k in range(a):
+            s -= L[a, k] * V[k, col]
+        V[a, col] = s / L[a, a]
+    for a in range(n - 1, -1, -1):
+        s = V[a, col]
+        for k in range(a + 1, n):
+            s -= L[k, a] * V[k, col]
+        V[a, col] = s / L[a, a]
+
+
+# ----------------------------------------------------------------------------------------
+# one QP
+# ----------------------------------------------------------------------------------------
+def qp_solve(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i):
+    """Solve one QP by the primal active-set method, starting from a feasible ``x``.
+
+    Parameters
+    ----------
+    H : ndarray, shape (N, N)
+        Symmetric positive semidefinite Hessian.
+    c : ndarray, shape (N,)
+        Linear term (the objective is ``1/2 x'Hx - c'x``).
+    A : ndarray, shape (M, N)
+        General constraint rows; ``lo``, ``hi`` shape (M,) their sides.
+    lb, ub : ndarray, shape (N,)
+        Variable bounds (may be infinite).
+    x : ndarray, shape (N,)
+        In: a feasible point. Out: the solution.
+    vs : ndarray of int64, shape (N,)
+        In: the working set for variables consistent with ``x`` (0 free, -1 at ``lb``,
+        +1 at ``ub``). Out: the final working set.
+    rs : ndarray of int64, shape (M,)
+        Same for rows (0 inactive, -1 at ``lo``, +1 at ``hi``); equality rows are forced in.
+    z, nu : ndarray, shapes (N,), (M,)
+        Out: bound and row multipliers (conventions in the module docstring).
+    maxiter : int
+        Iteration limit.
+    work_f, work_i : ndarray
+        Workspace from :func:`make_work` (float64 and int64).
+
+    Returns
+    -------
+    status : int
+        0 optimal, 1 iteration limit, 2 singular (no bounded minimiser along a
+        zero-curvature direction).
+    iterations : int
+    """
+    n = H.shape[0]
+    m = A.shape[0]
+    L, V, S, LS, u, t, xs, g, idx, ridx = _unpack(work_f, work_i, n, m)
+    hscale = 0.0
+    for i in range(n):
+        if H[i, i] > hscale:
+            hscale = H[i, i]
+    if hscale <= 0.0:
+        hscale = 1.0
+    gscale = 0.0
+    for i in range(n):
+        if abs(c[i]) > gscale:
+            gscale = abs(c[i])
+    gscale = max(gscale, hscale)
+    dtol = 1e-11 * gscale
+    for k in range(m):
+        if lo[k] == hi[k]:
+            rs[k] = -1
+    it = 0
+    while it < maxiter:
+        it += 1
+        nf, nr, ridged, code = _eqp(H, c, A, lo, hi, x, vs, rs, hscale,
+                                    idx, ridx, L, V, S, LS, u, t, xs, nu)
+        if code > 0:
+            k = code - 1
+            if lo[k] != hi[k]:
+                rs[k] = 0          # dependent inequality row: leave it out
+                continue
+            freed = False          # dependent equality row: free a fixed variable in it
+            for j in range(n):
+                if vs[j] != 0 and A[k, j] != 0.0:
+                    vs[j] = 0
+                    freed = True
+                    break
+            if not freed:
+                return MAXITER, it
+            continue
+        # step towards the subproblem minimiser, cut by the ratio test
+        xnorm = 1.0
+        for a in range(nf):
+            if abs(x[idx[a]]) > xnorm:
+                xnorm = abs(x[idx[a]])
+        ptol = 1e-14 * xnorm
+        alpha = 1.0
+        block = -1
+        bkind = 0
+        for a in range(nf):
+            i = idx[a]
+            d = xs[a] - x[i]
+            if d < -ptol and lb[i] > -np.inf:
+                s = (lb[i] - x[i]) / d
+                if s < alpha:
+                    alpha = s
+                    block = i
+                    bkind = -1
+            elif d > ptol and ub[i] < np.inf:
+                s = (ub[i] - x[i]) / d
+                if s < alpha:
+                    alpha = s
+                    block = i
+                    bkind = 1
+        for k in range(m):
+            if rs[k] != 0:
+                continue
+            ad = 0.0
+            ax = 0.0
+            for a in range(nf):
+                ad += A[k, idx[a]] * (xs[a] - x[idx[a]])
+            for j in range(n):
+                ax += A[k, j] * x[j]
+            if ad < -ptol and lo[k] > -np.inf:
+                s = (lo[k] - ax) / ad
+                if s < alpha:
+                    alpha = s
+                    block = n + k
+                    bkind = -1
+            elif ad > ptol and hi[k] < np.inf:
+                s = (hi[k] - ax) / ad
+                if s < alpha:
+                    alpha = s
+                    block = n + k
+                    bkind = 1
+        if alpha < 0.0:
+            alpha = 0.0
+        for a in range(nf):
+            i = idx[a]
+            x[i] = x[i] + alpha * (xs[a] - x[i])
+        if block >= 0:
+            if block < n:
+                vs[block] = bkind
+                x[block] = lb[block] if bkind < 0 else ub[block]
+            else:
+                rs[block - n] = bkind
+            continue
+        # at the subproblem minimiser: gradient and multipliers. H is symmetric, so
+        # H x = sum over the non-zero x_j of x_j H[j, :] (rows are contiguous); long-only
+        # solutions are sparse, which makes this O(N nnz) rather than O(N^2).
+        for i in range(n):
+            g[i] = -c[i]
+        for j in range(n):
+            xj = x[j]
+            if xj != 0.0:
+                for i in range(n):
+                    g[i] += H[j, i] * xj
+        for r in range(nr):
+            k = ridx[r]
+            nk = nu[k]
+            for i in range(n):
+                g[i] += A[k, i] * nk
+        if ridged:
+            worst = 0.0
+            for a in range(nf):
+                if abs(g[idx[a]]) > worst:
+                    worst = abs(g[idx[a]])
+            if worst > 1e-10 * gscale:
+                return SINGULAR, it
+        worst = dtol
+        wi = -1
+        for i in range(n):
+            z[i] = g[i] if vs[i] != 0 else 0.0
+            if vs[i] < 0 and -g[i] > worst:
+                worst = -g[i]
+                wi = i
+            elif vs[i] > 0 and g[i] > worst:
+                worst = g[i]
+                wi = i
+        for k in range(m):
+            if lo[k] == hi[k] or rs[k] == 0:
+                continue
+            if rs[k] < 0 and nu[k] > worst:
+                worst = nu[k]
+                wi = n + k
+            elif rs[k] > 0 and -nu[k] > worst:
+                worst = -nu[k]
+                wi = n + k
+        if wi < 0:
+            return OK, it
+        if wi < n:
+            vs[wi] = 0
+            z[wi] = 0.0
+        else:
+            rs[wi - n] = 0
+            nu[wi - n] = 0.0
+    return MAXITER, it
+
+
+def _unpack(work_f, work_i, n, m):
+    p = 0
+    L = work_f[p:p + n * n].reshape((n, n))
+    p += n * n
+    V = work_f[p:p + n * max(m, 1)].reshape((n, max(m, 1)))
+    p += n * max(m, 1)
+    S = work_f[p:p + max(m, 1) * max(m, 1)].reshape((max(m, 1), max(m, 1)))
+    p += max(m, 1) * max(m, 1)
+    LS = work_f[p:p + max(m, 1) * max(m, 1)].reshape((max(m, 1), max(m, 1)))
+    p += max(m, 1) * max(m, 1)
+    u = work_f[p:p + n]
+    p += n
+    t = work_f[p:p + max(m, 1)]
+    p += max(m, 1)
+    xs = work_f[p:p + n]
+    p += n
+    g = work_f[p:p + n]
+    idx = work_i[0:n]
+    ridx = work_i[n:n + max(m, 1)]
+    return L, V, S, LS, u, t, xs, g, idx, ridx
+
+
+def make_work(n, m):
+    """Workspace arrays (float64, int64) for :func:`qp_solve` with N variables, M rows."""
+    mm = max(m, 1)
+    nfl = n * n + n * mm + 2 * mm * mm + 3 * n + mm
+    return np.zeros(nfl), np.zeros(n + mm, dtype=np.int64)
+
+
+def _states(x, A, lo, hi, lb, ub, vs, rs):
+    """Working set of the constraints that ``x`` meets exactly (bounds) or to 1e-13 (rows)."""
+    n = x.shape[0]
+    for i in range(n):
+        vs[i] = 0
+        if x[i] == lb[i]:
+            vs[i] = -1
+        elif x[i] == ub[i]:
+            vs[i] = 1
+    for k in range(A.shape[0]):
+        rs[k] = 0
+        if lo[k] == hi[k]:
+            rs[k] = -1
+            continue
+        ax = 0.0
+        for j in range(n):
+            ax += A[k, j] * x[j]
+        tol = 1e-13 * (1.0 + abs(ax))
+        if lo[k] > -np.inf and abs(ax - lo[k]) <= tol:
+            rs[k] = -1
+        elif hi[k] < np.inf and abs(ax - hi[k]) <= tol:
+            rs[k] = 1
+
+
+def _feasible(x, A, lo, hi, lb, ub, tol):
+    n = x.shape[0]
+    for i in range(n):
+        if x[i] < lb[i] - tol or x[i] > ub[i] + tol:
+            return False
+    for k in range(A.shape[0]):
+        ax = 0.0
+        for j in range(n):
+            ax += A[k, j] * x[j]
+        if ax < lo[k] - tol or ax > hi[k] + tol:
+            return False
+    return True
+
+
+# ----------------------------------------------------------------------------------------
+# batch drivers
+# ----------------------------------------------------------------------------------------
+def qp_batch(H, c, A, lo, hi, lb, ub, x0, warm, rescale_row, maxiter, X, Z, NU, status, iters):
+    """Solve D QPs that share the bounds, in order, warm-starting each from the last.
+
+    Parameters
+    ----------
+    H : ndarray, shape (D, N, N)
+    c : ndarray, shape (D, N)
+    A : ndarray, shape (D, M, N)   (may be a broadcast view with stride 0 on D)
+    lo, hi : ndarray, shape (D, M)
+    lb, ub : ndarray, shape (N,)
+    x0 : ndarray, shape (D, N)
+        A feasible start for each problem (used when the previous solution is not).
+    warm : bool
+        Start problem d from the solution and working set of problem d - 1 when that
+        point is feasible for problem d.
+    rescale_row : int
+        When >= 0, the previous solution is first scaled so that row ``rescale_row``
+        equals its ``lo`` (homogeneous problems such as the maximum Sharpe ratio).
+    maxiter : int
+    X, Z, NU : ndarray, shapes (D, N), (D, N), (D, M)
+        Out: solutions and multipliers.
+    status, iters : ndarray of int64, shape (D,)
+        Out: status code and iteration count per problem.
+    """
+    D = H.shape[0]
+    n = H.shape[1]
+    m = A.shape[1]
+    work_f, work_i = make_work(n, m)
+    x = np.empty(n)
+    vs = np.zeros(n, dtype=np.int64)
+    rs = np.zeros(m, dtype=np.int64)
+    have_prev = False
+    for d in range(D):
+        used_prev = False
+        if warm and have_prev:
+            ok = True
+            if rescale_row >= 0:
+                ax = 0.0
+                for j in range(n):
+                    ax += A[d, rescale_row, j] * x[j]
+                if ax > 0.0:
+                    f = lo[d, rescale_row] / ax
+                    for j in range(n):
+                        x[j] *= f
+                else:
+                    ok = False
+            if ok and _feasible(x, A[d], lo[d], hi[d], lb, ub, 1e-12):
+                # keep the previous solution only when it is at least as good a start as
+                # the cold point for this problem (lower objective)
+                if _objective(H[d], c[d], x) <= _objective(H[d], c[d], x0[d]):
+                    used_prev = True
+                    _states(x, A[d], lo[d], hi[d], lb, ub, vs, rs)
+        if not used_prev:
+            for j in range(n):
+                x[j] = x0[d, j]
+            _states(x, A[d], lo[d], hi[d], lb, ub, vs, rs)
+        st, it = qp_solve(H[d], c[d], A[d], lo[d], hi[d], lb, ub, x, vs, rs,
+                          Z[d], NU[d], maxiter, work_f, work_i)
+        if st != OK and used_prev:
+            # never let a warm start decide the outcome: retry from the cold point
+            for j in range(n):
+                x[j] = x0[d, j]
+            _states(x, A[d], lo[d], hi[d], lb, ub, vs, rs)
+            st, it2 = qp_solve(H[d], c[d], A[d], lo[d], hi[d], lb, ub, x, vs, rs,
+                               Z[d], NU[d], maxiter, work_f, work_i)
+            it += it2
+        status[d] = st
+        iters[d] = it
+        for j in range(n):
+            X[d, j] = x[j]
+        have_prev = st == OK
+
+
+def target_vol_batch(S, mu, A, lo, hi, lb, ub, x0, xmax, var_target, maxiter,
+                     X, Z, NU, T, status):
+    """Maximum expected return subject to w' S w <= var_target, for D problems.
+
+    The solution lies on the mean-variance path ``w(t) = argmin 1/2 w'Sw - t mu'w``
+    (t = 1 / risk aversion), along which the variance increases with t and the weights
+    are piecewise linear in t (constant working set on each piece). The kernel brackets
+    the t whose variance equals the target, bisects until both ends share one working set
+    and then solves the quadratic for the variance on that piece exactly.
+
+    Parameters
+    ----------
+    S : (D, N, N) covariances; mu : (D, N) means; A, lo, hi, lb, ub as :func:`qp_batch`
+    x0 : (D, N) feasible starts; xmax : (D, N) maximum-return portfolios
+    var_target : float
+        Target variance (volatility squared), per period.
+    X, Z, NU : out, solutions and multipliers of the mean-variance problem at ``T[d]``
+    T : (D,) out, the t of the solution (0 when the minimum variance already meets the
+        target with equality, inf when the maximum-return portfolio is inside the target)
+    status : (D,) out, 0 optimal, 4 target below the minimum attainable volatility,
+        other codes from :func:`qp_solve`.
+    """
+    D = S.shape[0]
+    n = S.shape[1]
+    m = A.shape[1]
+    work_f, work_i = make_work(n, m)
+    c = np.zeros(n)
+    xa = np.empty(n)
+    xb = np.empty(n)
+    za = np.empty(n)
+    zb = np.empty(n)
+    na = np.empty(m)
+    nb = np.empty(m)
+    vsa = np.zeros(n, dtype=np.int64)
+    rsa = np.zeros(m, dtype=np.int64)
+    vsb = np.zeros(n, dtype=np.int64)
+    rsb = np.zeros(m, dtype=np.int64)
+    vs = np.zeros(n, dtype=np.int64)
+    rs = np.zeros(m, dtype=np.int64)
+    x = np.empty(n)
+    z = np.empty(n)
+    nu = np.empty(m)
+    for d in range(D):
+        Sd = S[d]
+        # the maximum-return portfolio already inside the target?
+        vmax = _quad(Sd, xmax[d])
+        if vmax <= var_target:
+            for j in range(n):
+                X[d, j] = xmax[d, j]
+                Z[d, j] = 0.0
+            for k in range(m):
+                NU[d, k] = 0.0
+            T[d] = np.inf
+            status[d] = OK
+            continue
+        # minimum variance (t = 0)
+        for j in range(n):
+            x[j] = x0[d, j]
+            c[j] = 0.0
+        _states(x, A[d], lo[d], hi[d], lb, ub, vs, rs)
+        st, it = qp_solve(Sd, c, A[d], lo[d], hi[d], lb, ub, x, vs, rs, z, nu,
+                          maxiter, work_f, work_i)
+        if st != OK:
+            status[d] = st
+            continue
+        v0 = _quad(Sd, x)
+        if v0 > var_target * (1.0 + 1e-12):
+            status[d] = OUT_OF_REACH
+            continue
+        _copy_state(x, z, nu, vs, rs, xa, za, na, vsa, rsa)
+        ta = 0.0
+        # bracket: double t until the variance reaches the target
+        mmax = 0.0
+        for j in range(n):
+            if abs(mu[d, j]) > mmax:
+                mmax = abs(mu[d, j])
+        tb = v0 / max(mmax, 1e-300)
+        found = False
+        for _ in range(200):
+            for j in range(n):
+                c[j] = tb * mu[d, j]
+            st, it = qp_solve(Sd, c, A[d], lo[d], hi[d], lb, ub, x, vs, rs, z, nu,
+                              maxiter, work_f, work_i)
+            if st != OK:
+                break
+            if _quad(Sd, x) >= var_target:
+                found = True
+                break
+            _copy_state(x, z, nu, vs, rs, xa, za, na, vsa, rsa)
+            ta = tb
+            tb = 2.0 * tb
+        if not found:
+            status[d] = st if st != OK else MAXITER
+            continue
+        _copy_state(x, z, nu, vs, rs, xb, zb, nb, vsb, rsb)
+        # bisect until both ends share a working set
+        for _ in range(200):
+            same = True
+            for j in range(n):
+                if vsa[j] != vsb[j]:
+                    same = False
+                    break
+            if same:
+                for k in range(m):
+                    if rsa[k] != rsb[k]:
+                        same = False
+                        break
+            if same or tb - ta <= 1e-15 * tb:
+                break
+            tm = 0.5 * (ta + tb)
+            for j in range(n):
+                c[j] = tm * mu[d, j]
+            st, it = qp_solve(Sd, c, A[d], lo[d], hi[d], lb, ub, x, vs, rs, z, nu,
+                              maxiter, work_f, work_i)
+            if st != OK:
+                break
+            if _quad(Sd, x) >= var_target:
+                _copy_state(x, z, nu, vs, rs, xb, zb, nb, vsb, rsb)
+                tb = tm
+            else:
+                _copy_state(x, z, nu, vs, rs, xa, za, na, vsa, rsa)
+                ta = tm
+        if st != OK:
+            status[d] = st
+            continue
+        # exact interpolation on the piece [ta, tb]: var(xa + s (xb - xa)) = target
+        for j in range(n):
+            x[j] = xb[j] - xa[j]
+        qa = _quad(Sd, x)
+        qb = 0.0
+        for i in range(n):
+            s = 0.0
+            for j in range(n):
+                s += Sd[i, j] * x[j]
+            qb += 2.0 * xa[i] * s
+        qc = _quad(Sd, xa) - var_target
+        if qa > 1e-300:
+            disc = qb * qb - 4.0 * qa * qc
+            if disc < 0.0:
+                disc = 0.0
+            sq = math.sqrt(disc)
+            # numerically stable root of the increasing branch
+            if qb >= 0.0:
+                s = (-2.0 * qc) / (qb + sq) if qb + sq > 0.0 else 0.0
+            else:
+                s = (-qb + sq) / (2.0 * qa)
+        elif abs(qb) > 1e-300:
+            s = -qc / qb
+        else:
+            s = 0.0
+        if s < 0.0:
+            s = 0.0
+        if s > 1.0:
+            s = 1.0
+        for j in range(n):
+            X[d, j] = xa[j] + s * (xb[j] - xa[j])
+            Z[d, j] = za[j] + s * (zb[j] - za[j])
+        for k in range(m):
+            NU[d, k] = na[k] + s * (nb[k] - na[k])
+        T[d] = ta + s * (tb - ta)
+        status[d] = OK
+
+
+def _objective(H, c, x):
+    """1/2 x'Hx - c'x, skipping zero entries of x."""
+    n = x.shape[0]
+    v = 0.0
+    for i in range(n):
+        xi = x[i]
+        if xi != 0.0:
+            s = 0.5 * H[i, i] * xi
+            for j in range(i):
+                if x[j] != 0.0:
+                    s += H[i, j] * x[j]
+            v += xi * s - c[i] * xi
+    return v
+
+
+def _copy_state(x, z, nu, vs, rs, xo, zo, nuo, vso, rso):
+    for j in range(x.shape[0]):
+        xo[j] = x[j]
+        zo[j] = z[j]
+        vso[j] = vs[j]
+    for k in range(nu.shape[0]):
+        nuo[k] = nu[k]
+        rso[k] = rs[k]
+
+
+def _quad(S, x):
+    n = x.shape[0]
+    q = 0.0
+    for i in range(n):
+        s = 0.0
+        for j in range(n):
+            s += S[i, j] * x[j]
+        q += x[i] * s
+    return q
+
+
+# ----------------------------------------------------------------------------------------
+# equal risk contribution
+# ----------------------------------------------------------------------------------------
+def erc_batch(S, budgets, tol, maxiter, X, status, iters):
+    """Long-only equal (or budgeted) risk contributions by Newton's method.
+
+    Solves the strictly convex problem ``min 1/2 y'Sy - sum_i b_i log y_i`` over ``y > 0``
+    (Maillard, Roncalli & Teiletche 2010, eq. for the log-barrier form; Spinu 2013), whose
+    optimum satisfies ``y_i (S y)_i = b_i``; the weights are ``y / sum(y)``.
+
+    Parameters
+    ----------
+    S : (D, N, N) covariances; budgets : (N,) risk budgets summing to 1
+    tol : float, stopping tolerance on max_i |y_i (S y)_i - b_i| (the risk-budget error)
+    X : (D, N) out weights; status, iters : (D,) out
+    """
+    D = S.shape[0]
+    n = S.shape[1]
+    y = np.empty(n)
+    g = np.empty(n)
+    Hm = np.empty((n, n))
+    L = np.empty((n, n))
+    step = np.empty(n)
+    yn = np.empty(n)
+    idx = np.arange(n)
+    for d in range(D):
+        Sd = S[d]
+        for i in range(n):
+            y[i] = 1.0 / math.sqrt(Sd[i, i]) if Sd[i, i] > 0.0 else 1.0
+        q = _quad(Sd, y)
+        f = math.sqrt(1.0 / q) if q > 0.0 else 1.0
+        for i in range(n):
+            y[i] *= f
+        st = NO_CONVERGENCE
+        it = 0
+        while it < maxiter:
+            it += 1
+            for i in range(n):
+                s = 0.0
+                for j in range(n):
+                    s += Sd[i, j] * y[j]
+                g[i] = s - budgets[i] / y[i]
+                for j in range(n):
+                    Hm[i, j] = Sd[i, j]
+                Hm[i, i] += budgets[i] / (y[i] * y[i])
+            if not _chol_subset(Hm, idx, n, L, 0.0, 0.0):
+                break
+            for i in range(n):
+                step[i] = g[i]
+            _chol_solve(L, n, step)
+            dec = 0.0
+            for i in range(n):
+                dec += g[i] * step[i]
+            worst = 0.0
+            for i in range(n):
+                if abs(g[i] * y[i]) > worst:
+                    worst = abs(g[i] * y[i])
+            if worst <= tol or dec <= 0.0:
+                st = OK
+                break
+            # damped step keeping y > 0, with backtracking on the objective
+            a = 1.0
+            for i in range(n):
+                if step[i] > 0.0 and a * step[i] >= 0.9 * y[i]:
+                    a = 0.9 * y[i] / step[i]
+            f0 = _erc_obj(Sd, y, budgets)
+            # near the optimum (small decrement) the objective's round-off hides the
+            # decrease: take the (positivity-limited) Newton step without the test
+            for _ in range(60 if dec > 1e-10 else 0):
+                for i in range(n):
+                    yn[i] = y[i] - a * step[i]
+                if _erc_obj(Sd, yn, budgets) <= f0 - 0.25 * a * dec:
+                    break
+                a *= 0.5
+            if dec <= 1e-10:
+                for i in range(n):
+                    yn[i] = y[i] - a * step[i]
+            for i in range(n):
+                y[i] = yn[i]
+        sy = 0.0
+        for i in range(n):
+            sy += y[i]
+        for i in range(n):
+            X[d, i] = y[i] / sy
+        status[d] = st
+        iters[d] = it
+
+
+def _erc_obj(S, y, b):
+    v = 0.5 * _quad(S, y)
+    for i in range(y.shape[0]):
+        if y[i] <= 0.0:
+            return np.inf
+        v -= b[i] * math.log(y[i])
+    return v
+
+
+# ----------------------------------------------------------------------------------------
+# compile: each name below becomes a numba kernel. :func:`plain_twin` executes this same
+# source with an identity decorator, giving undecorated Python twins for the tests.
+# ----------------------------------------------------------------------------------------
+_compile = globals().get("_PLAIN_TWIN_DECORATOR") or njit(cache=True)
+_chol_subset = _compile(_chol_subset)
+_chol_solve = _compile(_chol_solve)
+_chol_solve_col = _compile(_chol_solve_col)
+_eqp = _compile(_eqp)
+_unpack = _compile(_unpack)
+make_work = _compile(make_work)
+_states = _compile(_states)
+_feasible = _compile(_feasible)
+qp_solve = _compile(qp_solve)
+qp_batch = _compile(qp_batch)
+_copy_state = _compile(_copy_state)
+_objective = _compile(_objective)
+_quad = _compile(_quad)
+target_vol_batch = _compile(target_vol_batch)
+_erc_obj = _compile(_erc_obj)
+erc_batch = _compile(erc_batch)
+
+
+def plain_twin():
+    """The kernels of this module as plain (undecorated) Python functions.
+
+    Returns a dict of names to functions, built by executing this module's source with
+    an identity decorator, so the twin is the same code line for line.
+    """
+    import pathlib
+
+    src = pathlib.Path(__file__).read_text()
+    ns = {"__name__": "optimise._kernels_plain_twin",
+          "_PLAIN_TWIN_DECORATOR": lambda f: f}
+    exec(compile(src, __file__ + " (plain twin)", "exec"), ns)
+    return ns

@@ -1,0 +1,232 @@
+"""The verdict: does the proposed allocation survive input noise?
+
+Three stated criteria, each read from the run's summary (nothing is recomputed):
+
+1. Weight stability: the widest 5-95 percentile band of the proposed rule's weights, over
+   all assets, is at most ``max_band_width``.
+2. Beats 1/N under the population: the share of draws in which the proposed rule's
+   population certainty-equivalent return (CEQ) beats 1/N's is at least
+   ``min_prob_beats_equal_weight``.
+3. Out-of-sample: in the backtest the proposed rule's Sharpe ratio is above 1/N's, the
+   difference is significant at ``significance`` (Ledoit-Wolf bootstrap p-value; the
+   Jobson-Korkie-Memmel p-value when the bootstrap one is absent), and the deflated Sharpe
+   ratio, which accounts for the number of configurations tried, is at least
+   ``1 - significance``.
+
+A criterion whose inputs are absent (resampling or backtest skipped) is "not assessed" and
+says why; it neither passes nor fails.
+"""
+from __future__ import annotations
+
+import tomllib
+from dataclasses import dataclass
+from typing import Optional
+
+from ._model import Cell, apply_op, cell, fmt_value
+from ._run import RunFolder, as_float, dig
+
+__all__ = ["DEFAULTS", "Criterion", "Verdict", "verdict_settings", "proposed_rule", "evaluate"]
+
+#: Defaults of the study file's ``[verdict]`` table (kept equal to
+#: ``noiseproof.studyfile.VerdictSettings``; a test checks it).
+DEFAULTS = {"max_band_width": 0.25, "min_prob_beats_equal_weight": 0.5, "significance": 0.05}
+
+EQUAL_WEIGHT = "equal-weight"
+
+
+def verdict_settings(run: RunFolder) -> tuple[dict, dict]:
+    """Thresholds and, per key, where each came from ("study file" or "default")."""
+    found: dict = {}
+    for candidate in (dig(run.summary, "verdict_settings"), dig(run.summary, "verdict", "settings"),
+                      dig(run.summary, "verdict")):
+        if isinstance(candidate, dict):
+            for key in DEFAULTS:
+                x = as_float(candidate.get(key))
+                if x is not None and key not in found:
+                    found[key] = x
+    text = dig(run.manifest, "study_text") or dig(run.manifest, "study", "text")
+    if isinstance(text, str) and len(found) < len(DEFAULTS):
+        try:
+            table = tomllib.loads(text).get("verdict", {})
+        except tomllib.TOMLDecodeError:
+            table = {}
+        if isinstance(table, dict):
+            for key in DEFAULTS:
+                x = as_float(table.get(key))
+                if x is not None and key not in found:
+                    found[key] = x
+    settings = {k: found.get(k, v) for k, v in DEFAULTS.items()}
+    sources = {k: ("study file" if k in found else "default") for k in DEFAULTS}
+    return settings, sources
+
+
+def proposed_rule(run: RunFolder) -> Optional[str]:
+    """The rule the verdict is about: the named policy, else the first rule that is not 1/N."""
+    rules = run.rules
+    for candidate in (dig(run.summary, "policy"), dig(run.summary, "study", "policy"),
+                      dig(run.summary, "verdict", "proposed")):
+        if isinstance(candidate, str) and candidate in rules:
+            return candidate
+    text = dig(run.manifest, "study_text") or dig(run.manifest, "study", "text")
+    if isinstance(text, str):
+        try:
+            policy = tomllib.loads(text).get("policy")
+        except tomllib.TOMLDecodeError:
+            policy = None
+        if isinstance(policy, str) and policy in rules:
+            return policy
+    for name, rule in rules.items():
+        if name != EQUAL_WEIGHT and rule.get("type") != EQUAL_WEIGHT:
+            return name
+    return None
+
+
+@dataclass(frozen=True)
+class Criterion:
+    """One verdict row: what is measured, the measured number, the threshold, the result."""
+
+    number: str
+    label: str
+    measured: Cell
+    threshold: str
+    status: str          # "pass" | "fail" | "na"
+    note: str = ""
+
+
+@dataclass(frozen=True)
+class Verdict:
+    proposed: Optional[str]
+    settings: dict
+    sources: dict
+    criteria: tuple      # of Criterion
+    groups: tuple        # ((title, status, reason), ...) one per stated criterion
+    answer: str
+    status: str          # "pass" | "fail" | "open"
+
+
+def _na_cell(reason: str) -> Cell:
+    return Cell(text="n/a", numeric=False)
+
+
+def _status(ok: Optional[bool]) -> str:
+    return "na" if ok is None else ("pass" if ok else "fail")
+
+
+def _skipped(section) -> Optional[str]:
+    if isinstance(section, dict) and "skipped" in section:
+        return str(section["skipped"])
+    return None
+
+
+def evaluate(run: RunFolder) -> Verdict:
+    """Evaluate the stated criteria for the proposed rule."""
+    settings, sources = verdict_settings(run)
+    name = proposed_rule(run)
+    rows = []
+    groups = []
+    band_max = settings["max_band_width"]
+    prob_min = settings["min_prob_beats_equal_weight"]
+    alpha = settings["significance"]
+    if name is None:
+        answer = ("Not assessed: the study has no rule other than 1/N, so there is no proposed "
+                  "allocation to judge.")
+        return Verdict(None, settings, sources, (), (), answer, "open")
+
+    rule = run.rules[name]
+    resample_skip = _skipped(dig(run.summary, "resample"))
+    backtest_skip = _skipped(dig(run.summary, "backtest"))
+
+    # 1. weight bands
+    c = cell(run, ("rules", name, "weights"), op="max_band", fmt="pct1")
+    widest = None
+    if c.value is not None:
+        widths = {a: as_float(dig(w, "p95")) - as_float(dig(w, "p5")) for a, w in rule["weights"].items()}
+        widest = max(widths, key=widths.get)
+    ok = None if c.value is None else c.value <= band_max + 1e-12
+    why = resample_skip or ("" if c.value is not None else "the run has no per-asset weight bands")
+    rows.append(Criterion("1", "Widest 5-95 percentile weight band over assets"
+                          + (f" ({widest})" if widest else ""), c,
+                          f"at most {fmt_value(band_max, 'pct1')}", _status(ok), why))
+    if ok is None:
+        said = f"weight stability could not be assessed ({why})"
+    elif ok:
+        said = (f"its weights are stable: the widest 5-95 band is {c.text}, within the "
+                f"{fmt_value(band_max, 'pct1')} limit")
+    else:
+        said = (f"its weights are unstable: the widest 5-95 band is {c.text} ({widest}), above "
+                f"the {fmt_value(band_max, 'pct1')} limit")
+    groups.append(("weight bands narrow", _status(ok), why, said))
+
+    # 2. probability of beating 1/N on population CEQ
+    c = cell(run, ("rules", name, "population", "prob_beats_equal_weight_ceq"), fmt="pct1")
+    ok = None if c.value is None else c.value >= prob_min - 1e-12
+    why = resample_skip or ("" if c.value is not None else "the run has no population CEQ comparison")
+    rows.append(Criterion("2", "Share of draws beating 1/N on population CEQ", c,
+                          f"at least {fmt_value(prob_min, 'pct1')}", _status(ok), why))
+    if ok is None:
+        said = f"the comparison with 1/N under the population could not be assessed ({why})"
+    elif ok:
+        said = (f"it beats 1/N on population CEQ in {c.text} of draws (at least "
+                f"{fmt_value(prob_min, 'pct1')} required)")
+    else:
+        said = (f"it beats 1/N on population CEQ in only {c.text} of draws (at least "
+                f"{fmt_value(prob_min, 'pct1')} required)")
+    groups.append(("beats 1/N under the population", _status(ok), why, said))
+
+    # 3. backtest: ahead of 1/N, significant, survives deflation
+    bt = dig(rule, "backtest")
+    bt_skip = backtest_skip or _skipped(bt)
+    if as_float(dig(bt, "sharpe_diff")) is not None:
+        diff = cell(run, ("rules", name, "backtest", "sharpe_diff"), op="ann_sharpe", fmt="snum3")
+    else:
+        diff = cell(run, ("rules", name, "backtest", "sharpe"), ("rules", EQUAL_WEIGHT, "backtest", "sharpe"),
+                    op="ann_sharpe_diff", fmt="snum3")
+    p_key = "sharpe_diff_p_lw" if as_float(dig(bt, "sharpe_diff_p_lw")) is not None else "sharpe_diff_p_jkm"
+    p_label = "Ledoit-Wolf bootstrap" if p_key == "sharpe_diff_p_lw" else "Jobson-Korkie-Memmel"
+    pc = cell(run, ("rules", name, "backtest", p_key), fmt="pval")
+    dsr = cell(run, ("rules", name, "backtest", "dsr"), fmt="num3")
+    oks = [None if diff.value is None else diff.value > 0,
+           None if pc.value is None else pc.value < alpha,
+           None if dsr.value is None else dsr.value >= 1 - alpha - 1e-12]
+    why = bt_skip or ""
+    if not why and any(o is None for o in oks):
+        why = "the backtest results lack some of these figures"
+    rows.append(Criterion("3a", "Backtest Sharpe ratio minus 1/N's (annualised)", diff,
+                          "above 0", _status(oks[0]), why))
+    rows.append(Criterion("3b", f"p-value of that difference ({p_label})", pc,
+                          f"below {fmt_value(alpha, 'num3')}", _status(oks[1]), why))
+    rows.append(Criterion("3c", "Deflated Sharpe ratio (for the configurations tried)", dsr,
+                          f"at least {fmt_value(1 - alpha, 'num3')}", _status(oks[2]), why))
+    if any(o is False for o in oks):
+        g3 = "fail"
+    elif any(o is None for o in oks):
+        g3 = "na"
+    else:
+        g3 = "pass"
+    if g3 == "na":
+        said = f"the out-of-sample test could not be assessed ({why})"
+    else:
+        nums = (f"Sharpe difference {diff.text} annualised, p = {pc.text}, deflated Sharpe "
+                f"ratio {dsr.text}")
+        said = ("its out-of-sample Sharpe advantage over 1/N is significant after deflation ("
+                if g3 == "pass" else
+                "its out-of-sample Sharpe ratio is not significantly above 1/N's after deflation (") \
+            + nums + ")"
+    groups.append(("significantly ahead of 1/N out of sample after deflation", g3, why, said))
+
+    failed = [g for g in groups if g[1] == "fail"]
+    open_ = [g for g in groups if g[1] == "na"]
+    findings = "; ".join(g[3] for g in groups)
+    if failed:
+        status = "fail"
+        head = (f"No. The proposed allocation ('{name}') fails {len(failed)} of the "
+                f"{len(groups)} stated criteria")
+    elif open_:
+        status = "open"
+        head = (f"Not established. The proposed allocation ('{name}') passes every criterion "
+                f"that could be assessed, but {len(open_)} of {len(groups)} could not be")
+    else:
+        status = "pass"
+        head = f"Yes. The proposed allocation ('{name}') passes all {len(groups)} stated criteria"
+    answer = f"{head}: {findings}."
+    return Verdict(name, settings, sources, tuple(rows), tuple(groups), answer, status)

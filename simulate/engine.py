@@ -1,0 +1,1387 @@
+"""The resampling engine: blocks of draws, common random numbers, streaming statistics.
+
+A study's work is a list of :class:`Block` objects fixed by the spec alone
+(:func:`block_plan`). Three parts share one ``SeedSequence(seed)``:
+
+* ``main`` (spawn key ``(0, c)`` for chunk ``c``): ``draws`` synthetic histories of
+  ``length`` rows from the study's generator. Every rule (and every estimator) sees the
+  same histories (common random numbers). Per rule: weights, population metrics,
+  attribution runs; for the frontier rule, the frontiers of Broadie (1993).
+* ``check`` (spawn key ``(1, c)``): the engine self-check against the closed form of
+  Kan & Zhou (2007): normal histories of ``length`` rows from the population, the
+  plug-in cash-budget mean-variance rule with the MLE covariance.
+* ``sweep`` (spawn key ``(2 + k, c)`` for the k-th history length): ``sweep_draws``
+  histories per length, each rule scored against 1/N.
+
+Spawn key ``(p, c)`` is exactly ``SeedSequence(seed).spawn(...)[p].spawn(...)[c]``.
+Every chunk of :data:`~simulate.stats.CHUNK_DRAWS` draws gets its own generator and is
+processed on its own (estimators and the batched optimiser see exactly that chunk), and
+its floating-point partial sums are merged in chunk order. So the results do not depend
+on the block size, the number of workers or the order in which blocks finish.
+"""
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import math
+from dataclasses import dataclass, field, replace
+from typing import Any, Callable, Iterable, Mapping, Optional
+
+import numpy as np
+
+from estimators.core import DataError, NoiseproofError, SettingsError
+
+from . import _kernels
+from .generators import GENERATORS, NormalGenerator, make_generator
+from .stats import CHUNK_DRAWS, ChunkSums, WeightHistogram, chunk_moments, moments_mean_sd_se
+
+__all__ = [
+    "RuleSpec",
+    "ResampleSpec",
+    "Block",
+    "BlockResult",
+    "block_plan",
+    "run_block",
+    "merge_blocks",
+    "run_resampling",
+    "score",
+    "METRICS",
+    "PERCENTILES",
+]
+
+#: Population metrics of a per-draw allocation, in the order of the metric axis.
+METRICS = ("expected_return", "variance", "volatility", "sharpe", "ceq")
+#: Weight percentiles reported per asset.
+PERCENTILES = (5, 25, 50, 75, 95)
+#: Width of the weight histogram's bins (percentiles are exact to half of it).
+WEIGHT_BIN = 0.001
+_PART_MAIN, _PART_CHECK, _PART_SWEEP0 = 0, 1, 2
+
+
+# --------------------------------------------------------------------------- specs
+
+@dataclass(frozen=True)
+class RuleSpec:
+    """A rule with the estimator that feeds it.
+
+    Attributes
+    ----------
+    rule : optimise.Rule
+        Needs ``name``, ``type``, ``params``, ``needs_mean``, ``needs_covariance``,
+        ``weights(mean, cov)`` and ``weights_batch(means, covs)``.
+    mean, covariance : str
+        Estimator names (``estimators.MEAN_ESTIMATORS`` / ``COVARIANCE_ESTIMATORS``).
+    params : dict
+        Estimator parameters (e.g. ``{"ewma_half_life": 36}``); ``given_mean`` and
+        ``given_covariance`` arrays are passed on to the estimators as such.
+    """
+
+    rule: Any
+    mean: str = "sample"
+    covariance: str = "sample"
+    params: Mapping = field(default_factory=dict)
+
+    @property
+    def name(self) -> str:
+        return self.rule.name
+
+    def estimator_key(self):
+        items = []
+        for k in sorted(self.params):
+            v = self.params[k]
+            items.append((k, np.asarray(v).tobytes() if isinstance(v, np.ndarray) else v))
+        return (self.mean, self.covariance, tuple(items))
+
+
+@dataclass(frozen=True)
+class ResampleSpec:
+    """Everything a resampling run depends on (and nothing else).
+
+    Attributes
+    ----------
+    population_mean : ndarray, shape (N,)
+        Per-period mean of the population (excess returns when the history is excess).
+    population_cov : ndarray, shape (N, N)
+        Population covariance.
+    history : ndarray, shape (T, N), or None
+        The history the bootstrap generators resample (None with assumptions).
+    assets : tuple of str
+    rules : tuple of RuleSpec
+        Must include the 1/N rule under the name ``equal-weight``.
+    generator : str
+        ``normal``, ``student-t``, ``bootstrap`` or ``block-bootstrap``.
+    draws : int
+        Synthetic histories in the main part.
+    length : int
+        Rows per synthetic history.
+    seed : int
+        Root of the study's ``SeedSequence``.
+    risk_aversion : float
+        The one gamma every rule is scored with (CEQ = mean - gamma / 2 variance).
+    degrees_of_freedom, block_length : float or None
+        Student-t degrees of freedom and stationary-bootstrap mean block length; None
+        fits / chooses them from the history.
+    block_size : int
+        Draws per block (rounded up to whole chunks); memory and scheduling only.
+    keep_draws : bool
+        Keep per-draw weights (``draw_arrays``).
+    frontier_points : int
+        Ranks along the frontier for Broadie's frontiers and the rank-matched average.
+    frontier_rule : str or None
+        Name of the rule whose estimator and constraints the frontiers use; None picks
+        the first rule that uses means and covariances; frontiers are skipped when
+        there is none or ``frontier_points < 2``.
+    frontier_draws : int
+        The frontiers use the first ``min(draws, frontier_draws)`` draws (one critical
+        line run per draw).
+    sweep_lengths : tuple of int
+        History lengths (rows) of the sweep; empty skips it.
+    sweep_draws : int or None
+        Draws per sweep length (None: ``min(draws, 1000)``).
+    attribution : bool
+        Rerun the mean-using rules with the true mean / the true covariance.
+    hold_threshold : float
+        An asset counts as held in a draw when ``|w| > hold_threshold``.
+    draw : str
+        ``auto``, ``histories`` or ``moments`` (only ``histories`` is built here; ``auto``
+        takes it).
+    periods_per_year : int
+        For the ``_annualised`` copies.
+    self_check_draws : int
+        Draws of the Kan & Zhou self-check (0 skips it).
+    metric_sample : int
+        Per-draw population metrics are kept for the first ``metric_sample`` draws, for
+        the distribution tables (means and errors use all draws).
+    """
+
+    population_mean: np.ndarray
+    population_cov: np.ndarray
+    history: Optional[np.ndarray]
+    assets: tuple
+    rules: tuple
+    generator: str
+    draws: int
+    length: int
+    seed: int
+    risk_aversion: float
+    degrees_of_freedom: Optional[float] = None
+    block_length: Optional[float] = None
+    block_size: int = 250
+    keep_draws: bool = False
+    frontier_points: int = 21
+    frontier_rule: Optional[str] = None
+    frontier_draws: int = 1000
+    sweep_lengths: tuple = ()
+    sweep_draws: Optional[int] = None
+    attribution: bool = True
+    hold_threshold: float = 0.005
+    draw: str = "auto"
+    periods_per_year: int = 12
+    self_check_draws: int = 2000
+    metric_sample: int = 20000
+    population_source: str = ""
+
+    # ---- derived, deterministic -------------------------------------------------------
+    @property
+    def n_assets(self) -> int:
+        return int(self.population_mean.shape[0])
+
+    @property
+    def rule_names(self) -> tuple:
+        return tuple(r.name for r in self.rules)
+
+    @property
+    def chunk_draws(self) -> int:
+        return CHUNK_DRAWS
+
+    @property
+    def block_draws(self) -> int:
+        """Draws per block: ``block_size`` rounded up to whole chunks."""
+        return int(math.ceil(self.block_size / CHUNK_DRAWS) * CHUNK_DRAWS)
+
+    @property
+    def n_sweep_draws(self) -> int:
+        return int(self.sweep_draws) if self.sweep_draws is not None else min(self.draws, 1000)
+
+    def resolved(self) -> "ResampleSpec":
+        """The same spec with fitted degrees of freedom / automatic block length filled in."""
+        changes = {}
+        if self.generator == "student-t" and self.degrees_of_freedom is None:
+            g = make_generator("student-t", mean=self.population_mean, cov=self.population_cov,
+                               history=self.history)
+            changes["degrees_of_freedom"] = float(g.degrees_of_freedom)
+            changes["population_source"] = self.population_source
+        if self.generator == "block-bootstrap" and self.block_length is None:
+            g = make_generator("block-bootstrap", mean=self.population_mean,
+                               cov=self.population_cov, history=self.history)
+            changes["block_length"] = float(g.block_length)
+        return replace(self, **changes) if changes else self
+
+    def fingerprint(self) -> str:
+        """SHA-256 of everything that determines the numbers (not block size or workers)."""
+        h = hashlib.sha256()
+        for arr in (self.population_mean, self.population_cov, self.history):
+            h.update(b"none" if arr is None else np.ascontiguousarray(arr, np.float64).tobytes())
+        rules = []
+        for r in self.rules:
+            rules.append([r.name, getattr(r.rule, "type", ""), _jsonable(getattr(r.rule, "params", {})),
+                          r.mean, r.covariance, repr(r.estimator_key())])
+        meta = [list(self.assets), rules, self.generator, self.draws, self.length, self.seed,
+                self.risk_aversion, self.degrees_of_freedom, self.block_length, self.keep_draws,
+                self.frontier_points, self.frontier_rule, self.frontier_draws,
+                list(self.sweep_lengths), self.sweep_draws, self.attribution,
+                self.hold_threshold, self.draw, self.self_check_draws, self.metric_sample,
+                CHUNK_DRAWS]
+        h.update(json.dumps(meta, default=str).encode())
+        return h.hexdigest()
+
+
+def _jsonable(obj):
+    if isinstance(obj, Mapping):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return _jsonable(obj.tolist())
+    if isinstance(obj, (np.floating, np.integer)):
+        return obj.item()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    return obj
+
+
+# --------------------------------------------------------------------------- validation
+
+def _spec_iv(spec: ResampleSpec) -> None:
+    """Validate a spec once (at the public entry points)."""
+    mu = np.asarray(spec.population_mean)
+    cov = np.asarray(spec.population_cov)
+    n = mu.shape[0] if mu.ndim == 1 else -1
+    if mu.ndim != 1 or cov.shape != (n, n):
+        raise SettingsError(f"population mean must be (N,) and covariance (N, N); got "
+                            f"{mu.shape} and {cov.shape}")
+    if not (np.all(np.isfinite(mu)) and np.all(np.isfinite(cov))):
+        raise DataError("the population mean or covariance holds NaN or infinite values")
+    if len(spec.assets) != n:
+        raise SettingsError(f"{len(spec.assets)} asset names for {n} assets")
+    if spec.generator not in GENERATORS:
+        raise SettingsError(f"[resample] generator = {spec.generator!r} is not one of: "
+                            f"{', '.join(GENERATORS)}")
+    if spec.generator in ("bootstrap", "block-bootstrap") and spec.history is None:
+        raise SettingsError(f"[resample] generator '{spec.generator}' resamples a history; "
+                            f"capital-market assumptions have none (use 'normal' or 'student-t')")
+    if spec.draw == "moments":
+        raise SettingsError("[resample] draw = 'moments' is not available yet; use 'auto' or "
+                            "'histories'")
+    if spec.draws < 1 or spec.length < 2:
+        raise SettingsError(f"[resample] needs draws >= 1 and length >= 2 (got {spec.draws}, "
+                            f"{spec.length})")
+    if not (spec.risk_aversion > 0 and math.isfinite(spec.risk_aversion)):
+        raise SettingsError(f"risk_aversion must be a positive number, not {spec.risk_aversion!r}")
+    names = spec.rule_names
+    if len(set(names)) != len(names):
+        raise SettingsError(f"rule names must be unique, got {names}")
+    if "equal-weight" not in names:
+        raise SettingsError("the rules must include 1/N under the name 'equal-weight'")
+    if spec.history is not None:
+        h = np.asarray(spec.history)
+        if h.ndim != 2 or h.shape[1] != n or not np.all(np.isfinite(h)):
+            raise DataError(f"the history must be a finite (T, {n}) array")
+    if spec.frontier_rule is not None and spec.frontier_rule not in names:
+        raise SettingsError(f"frontier rule {spec.frontier_rule!r} names no rule")
+    for r in spec.rules:
+        need = _min_rows(r, n)
+        if need > spec.length:
+            raise SettingsError(
+                f"[resample] length = {spec.length} rows is too short for rule '{r.name}' "
+                f"(estimators {r.mean} / {r.covariance} need at least {need} rows for "
+                f"{n} assets)")
+
+
+def _min_rows(rs: RuleSpec, n: int) -> int:
+    if not (getattr(rs.rule, "needs_mean", True) or getattr(rs.rule, "needs_covariance", True)):
+        return 1
+    try:
+        from estimators import min_rows
+    except ImportError:  # pragma: no cover - estimators not installed yet
+        return 2
+    return int(min_rows(rs.mean, rs.covariance, n))
+
+
+# --------------------------------------------------------------------------- blocks
+
+@dataclass(frozen=True)
+class Block:
+    """A unit of work: draws ``[start, stop)`` of one part of the study.
+
+    Attributes
+    ----------
+    index : int
+        Position in :func:`block_plan` (the merge order).
+    start, stop : int
+        Draw range within the part; ``start`` is a multiple of the chunk size.
+    part : str
+        ``main``, ``check`` or ``sweep``.
+    length : int
+        Rows per synthetic history.
+    sweep_index : int
+        Which sweep length (``part == "sweep"``), else -1.
+    """
+
+    index: int
+    start: int
+    stop: int
+    part: str = "main"
+    length: int = 0
+    sweep_index: int = -1
+
+    @property
+    def first_chunk(self) -> int:
+        return self.start // CHUNK_DRAWS
+
+    @property
+    def n_chunks(self) -> int:
+        return int(math.ceil((self.stop - self.start) / CHUNK_DRAWS))
+
+    @property
+    def spawn_part(self) -> int:
+        if self.part == "main":
+            return _PART_MAIN
+        if self.part == "check":
+            return _PART_CHECK
+        return _PART_SWEEP0 + self.sweep_index
+
+
+def _self_check_applies(spec: ResampleSpec):
+    """(True, "") when the Kan & Zhou closed form covers the setting, else (False, reason)."""
+    n, t = spec.n_assets, spec.length
+    if spec.self_check_draws <= 0:
+        return False, "self_check_draws = 0"
+    if spec.generator != "normal":
+        return False, (f"the closed form is for normal returns; the study's generator is "
+                       f"'{spec.generator}'")
+    if t <= n + 4:
+        return False, f"the closed form needs T > N + 4 (T = {t}, N = {n})"
+    return True, ""
+
+
+def block_plan(spec: ResampleSpec) -> list:
+    """The study's blocks, in merge order; fixed by the spec (not by the workers).
+
+    Main blocks first, then the sweep lengths in order, then the self-check.
+    """
+    size = spec.block_draws
+    blocks = []
+
+    def add(part, total, length, k=-1):
+        for start in range(0, total, size):
+            blocks.append(Block(len(blocks), start, min(start + size, total), part, length, k))
+
+    add("main", spec.draws, spec.length)
+    for k, t in enumerate(spec.sweep_lengths):
+        add("sweep", spec.n_sweep_draws, int(t), k)
+    if _self_check_applies(spec)[0]:
+        add("check", spec.self_check_draws, spec.length)
+    return blocks
+
+
+@dataclass(frozen=True)
+class BlockResult:
+    """What one block contributes: per-chunk partial sums, counts, samples, kept draws.
+
+    Attributes
+    ----------
+    index : int
+        The block's position in the plan.
+    part : str
+    first_chunk, n_chunks, n_draws : int
+    fingerprint : str
+        The spec's fingerprint (a block from another spec is never merged).
+    sums : dict of str to ndarray, shape (n_chunks, ...)
+        Floating-point partial sums, one row per chunk (merged in chunk order).
+    counts : dict of str to ndarray (int64)
+        Order-free integer counts.
+    extrema : dict of str to ndarray
+        ``min:<name>`` / ``max:<name>`` running extrema.
+    samples : dict of str to ndarray, shape (draws kept, ...)
+        Per-draw values kept for distribution tables and per-draw weights.
+    """
+
+    index: int
+    part: str
+    first_chunk: int
+    n_chunks: int
+    n_draws: int
+    fingerprint: str
+    sums: dict
+    counts: dict
+    extrema: dict
+    samples: dict
+    notes: dict = field(default_factory=dict)
+
+    _MAGIC = b"NPBLOCK1\n"
+
+    def to_bytes(self) -> bytes:
+        """Durable form: a header with a SHA-256 checksum, then an ``.npz`` payload."""
+        arrays = {}
+        for group in ("sums", "counts", "extrema", "samples"):
+            for k, v in getattr(self, group).items():
+                arrays[f"{group}/{k}"] = v
+        meta = {"index": self.index, "part": self.part, "first_chunk": self.first_chunk,
+                "n_chunks": self.n_chunks, "n_draws": self.n_draws,
+                "fingerprint": self.fingerprint, "notes": self.notes}
+        arrays["meta"] = np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8)
+        buf = io.BytesIO()
+        np.savez(buf, **arrays)
+        payload = buf.getvalue()
+        digest = hashlib.sha256(payload).hexdigest().encode()
+        return self._MAGIC + digest + b" " + str(len(payload)).encode() + b"\n" + payload
+
+    @classmethod
+    def from_bytes(cls, data: bytes) -> "BlockResult":
+        """Read :meth:`to_bytes` output; a truncated or altered file raises DataError."""
+        if not data.startswith(cls._MAGIC):
+            raise DataError("block file is not a noiseproof block (bad header)")
+        rest = data[len(cls._MAGIC):]
+        nl = rest.find(b"\n")
+        if nl < 0:
+            raise DataError("block file is truncated (no header)")
+        try:
+            digest, size = rest[:nl].split(b" ")
+            size = int(size)
+        except ValueError:
+            raise DataError("block file header is corrupt") from None
+        payload = rest[nl + 1:]
+        if len(payload) != size:
+            raise DataError(f"block file is truncated ({len(payload)} of {size} payload bytes)")
+        if hashlib.sha256(payload).hexdigest().encode() != digest:
+            raise DataError("block file is corrupt (checksum mismatch)")
+        with np.load(io.BytesIO(payload), allow_pickle=False) as z:
+            meta = json.loads(bytes(z["meta"]).decode())
+            groups = {"sums": {}, "counts": {}, "extrema": {}, "samples": {}}
+            for key in z.files:
+                if key == "meta":
+                    continue
+                g, name = key.split("/", 1)
+                groups[g][name] = z[key]
+        return cls(meta["index"], meta["part"], meta["first_chunk"], meta["n_chunks"],
+                   meta["n_draws"], meta["fingerprint"], **groups,
+                   notes=meta.get("notes", {}))
+
+
+# --------------------------------------------------------------------------- scoring
+
+def score(weights: np.ndarray, mean: np.ndarray, cov: np.ndarray, gamma: float) -> np.ndarray:
+    """Population metrics of allocations.
+
+    Parameters
+    ----------
+    weights : ndarray, shape (D, N)
+        Risky-asset weights; any remainder ``1 - sum(w)`` is cash, which earns the
+        risk-free rate (zero in excess-return terms). A NaN row (a draw the rule could
+        not handle) gives NaN metrics.
+    mean : ndarray, shape (N,)
+        Population (excess) mean per period.
+    cov : ndarray, shape (N, N)
+        Population covariance per period.
+    gamma : float
+        Risk aversion.
+
+    Returns
+    -------
+    ndarray, shape (D, 5)
+        Columns :data:`METRICS`: expected return ``w'mu``, variance ``w' Sigma w``,
+        volatility, Sharpe ratio ``w'mu / vol`` (0 for a portfolio without risk), and
+        CEQ ``w'mu - gamma / 2 w' Sigma w`` (all per period).
+    """
+    er = weights @ mean
+    var = np.einsum("dn,dn->d", weights @ cov, weights)
+    var = np.maximum(var, 0.0)
+    vol = np.sqrt(var)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sharpe = np.where(vol > 0.0, er / np.where(vol > 0.0, vol, 1.0),
+                          np.where(np.isnan(vol), np.nan, 0.0))
+    out = np.empty((weights.shape[0], 5))
+    out[:, 0] = er
+    out[:, 1] = var
+    out[:, 2] = vol
+    out[:, 3] = sharpe
+    out[:, 4] = er - 0.5 * gamma * var
+    return out
+
+
+# --------------------------------------------------------------------------- per-process context
+
+class _Context:
+    """Objects derived from a spec (generators, histogram layouts); rebuilt per call."""
+
+    def __init__(self, spec: ResampleSpec):
+        self.spec = spec
+        self.mu = np.ascontiguousarray(spec.population_mean, dtype=np.float64)
+        self.cov = np.ascontiguousarray(spec.population_cov, dtype=np.float64)
+        self.gamma = float(spec.risk_aversion)
+        self.n = self.mu.shape[0]
+        self.rules = spec.rules
+        self.ew = spec.rule_names.index("equal-weight")
+        self._gen = None
+        self._check_gen = None
+        self.hists = [_histogram_for(r) for r in spec.rules]
+        self.attrib = [bool(spec.attribution and getattr(r.rule, "needs_mean", False)
+                            and getattr(r.rule, "needs_covariance", False)) for r in spec.rules]
+        self.frontier_index = _frontier_rule_index(spec)
+
+    @property
+    def generator(self):
+        if self._gen is None:
+            s = self.spec
+            self._gen = make_generator(s.generator, mean=self.mu, cov=self.cov,
+                                       history=None if s.history is None
+                                       else np.ascontiguousarray(s.history, dtype=np.float64),
+                                       degrees_of_freedom=s.degrees_of_freedom,
+                                       block_length=s.block_length)
+        return self._gen
+
+    @property
+    def check_generator(self):
+        if self._check_gen is None:
+            self._check_gen = NormalGenerator(self.mu, self.cov)
+        return self._check_gen
+
+    @property
+    def frontier_constraints(self):
+        """(constraints, description) for the frontiers; resolved once per context.
+
+        The frontier rule's own constraints when the critical line algorithm supports
+        them (full budget, no groups, bounded weights); else long-only with the rule's
+        per-asset bounds; else plain long-only.
+        """
+        cached = getattr(self, "_frontier_cons", None)
+        if cached is not None:
+            return cached
+        from optimise import efficient_frontier, make_constraints
+
+        rule = self.rules[self.frontier_index].rule
+        bounds = (getattr(rule, "params", {}) or {}).get("bounds")
+        candidates = [(lambda: rule.constraints, "the rule's own constraints")]
+        if bounds:
+            candidates.append((lambda: make_constraints(self.spec.assets, long_only=True,
+                                                        bounds=bounds),
+                               "long-only, full budget, with the rule's per-asset bounds (the "
+                               "critical line algorithm takes no group bounds or cash budget)"))
+        candidates.append((lambda: make_constraints(self.spec.assets, long_only=True),
+                           "long-only, full budget (the critical line algorithm takes no group "
+                           "bounds, cash budget or unbounded weights)"))
+        last = None
+        for make, text in candidates:
+            try:
+                cons = make()
+                efficient_frontier(self.mu, self.cov, cons)
+            except NoiseproofError as exc:
+                last = exc
+                continue
+            self._frontier_cons = (cons, text)
+            return self._frontier_cons
+        raise last
+
+    def fixed_weights(self, i: int) -> np.ndarray:
+        """Weights of an input-free rule (e.g. 1/N), from one call with the population."""
+        cache = self.__dict__.setdefault("_fixed", {})
+        if i not in cache:
+            a = self.rules[i].rule.weights(self.mu, self.cov)
+            cache[i] = np.asarray(getattr(a, "weights", a), dtype=np.float64)
+        return cache[i]
+
+    def sweep_valid(self, length: int):
+        return [_min_rows(r, self.n) <= length for r in self.rules]
+
+
+def _histogram_for(rs: RuleSpec) -> WeightHistogram:
+    params = getattr(rs.rule, "params", {}) or {}
+    long_only = bool(params.get("long_only", True))
+    budget = params.get("budget", "full")
+    if rs.rule.type == "equal-weight" or (long_only and budget == "full"):
+        return WeightHistogram(0.0, 1.0, WEIGHT_BIN)
+    return WeightHistogram(-3.0, 3.0, WEIGHT_BIN)
+
+
+def _frontier_rule_index(spec: ResampleSpec) -> Optional[int]:
+    if spec.frontier_points < 2:
+        return None
+    for i, r in enumerate(spec.rules):
+        if spec.frontier_rule is not None:
+            if r.name == spec.frontier_rule:
+                return i
+        elif getattr(r.rule, "needs_mean", False) and getattr(r.rule, "needs_covariance", False):
+            return i
+    return None
+
+
+# --------------------------------------------------------------------------- estimation hooks
+
+def _estimate_batch(histories: np.ndarray, rs: RuleSpec):
+    from estimators import estimate_batch
+
+    params = dict(rs.params)
+    given_mean = params.pop("given_mean", None)
+    given_cov = params.pop("given_covariance", None)
+    mb = estimate_batch(histories, rs.mean, rs.covariance, params=params or None,
+                        given_mean=given_mean, given_covariance=given_cov)
+    return np.asarray(mb.mean, dtype=np.float64), np.asarray(mb.covariance, dtype=np.float64)
+
+
+def _moments_for(ctx: _Context, histories: np.ndarray, valid=None):
+    """Estimated moments per estimator key for the rules that need them (one chunk)."""
+    cache = {}
+    out = []
+    d = histories.shape[0]
+    for i, rs in enumerate(ctx.rules):
+        if valid is not None and not valid[i]:
+            out.append(None)
+            continue
+        if not (getattr(rs.rule, "needs_mean", True) or getattr(rs.rule, "needs_covariance", True)):
+            out.append(None)          # input-free rule (1/N): weights computed once
+            continue
+        key = rs.estimator_key()
+        if key not in cache:
+            cache[key] = _estimate_batch(histories, rs)
+        out.append(cache[key])
+    return out
+
+
+def _rule_weights(ctx, i, moments_i, d):
+    """_weights for rule i of the context; input-free rules are solved once and repeated."""
+    rs = ctx.rules[i]
+    if moments_i is None:
+        fixed = ctx.fixed_weights(i)
+        return np.repeat(fixed[None, :], d, axis=0), np.ones(d, dtype=bool), None
+    return _weights(rs, *moments_i)
+
+
+def _weights(rs: RuleSpec, means, covs):
+    """Weights of one chunk, shape (d, N), with NaN rows where the rule has no answer.
+
+    The batched call is tried first; when it raises (e.g. no portfolio with a positive
+    expected return for max-sharpe in some draw), the chunk is solved draw by draw and
+    the draws the rule cannot handle get NaN weights. Returns ``(weights, ok, message)``
+    with ``ok`` (d,) bool and the first failure's message (or None).
+    """
+    means = np.ascontiguousarray(means)
+    covs = np.ascontiguousarray(covs)
+    try:
+        w = np.asarray(rs.rule.weights_batch(means, covs), dtype=np.float64)
+        ok = np.all(np.isfinite(w), axis=1)
+        msg = None if ok.all() else f"rule '{rs.name}' returned non-finite weights"
+        if not ok.all():
+            w = w.copy()
+            w[~ok] = np.nan
+        return w, ok, msg
+    except NoiseproofError:
+        pass
+    d, n = means.shape
+    w = np.full((d, n), np.nan)
+    ok = np.zeros(d, dtype=bool)
+    msg = None
+    for j in range(d):
+        try:
+            a = rs.rule.weights(means[j], covs[j])
+        except NoiseproofError as exc:
+            msg = msg or " ".join(str(exc).split())
+            continue
+        x = np.asarray(getattr(a, "weights", a), dtype=np.float64)
+        if np.all(np.isfinite(x)):
+            w[j] = x
+            ok[j] = True
+    return w, ok, msg
+
+
+# --------------------------------------------------------------------------- block work
+
+def run_block(spec: ResampleSpec, block_index: int) -> BlockResult:
+    """Compute one block of the plan. Pure: same spec and index, same bytes.
+
+    Parameters
+    ----------
+    spec : ResampleSpec
+    block_index : int
+        Index into :func:`block_plan`.
+
+    Returns
+    -------
+    BlockResult
+        Picklable; :meth:`BlockResult.to_bytes` gives its durable form.
+    """
+    plan = block_plan(spec)
+    if not 0 <= block_index < len(plan):
+        raise SettingsError(f"block index {block_index} out of range (0..{len(plan) - 1})")
+    block = plan[block_index]
+    ctx = _Context(spec)
+    if block.part == "main":
+        acc = _MainAccumulator(ctx, block)
+    elif block.part == "sweep":
+        acc = _SweepAccumulator(ctx, block)
+    else:
+        acc = _CheckAccumulator(ctx, block)
+    gen = ctx.check_generator if block.part == "check" else ctx.generator
+    for c in range(block.first_chunk, block.first_chunk + block.n_chunks):
+        lo = c * CHUNK_DRAWS
+        hi = min(lo + CHUNK_DRAWS, block.stop)
+        ss = np.random.SeedSequence(spec.seed, spawn_key=(block.spawn_part, c))
+        rng = np.random.Generator(np.random.PCG64(ss))
+        histories = gen.draw(rng, hi - lo, block.length)
+        try:
+            acc.add_chunk(histories, lo)
+        except NoiseproofError as exc:
+            raise type(exc)(f"resampling ({block.part} draws {lo}..{hi - 1}): {exc}") from None
+    return acc.result(spec.fingerprint())
+
+
+class _Accumulator:
+    def __init__(self, ctx, block):
+        self.ctx = ctx
+        self.block = block
+        self.sums: dict = {}
+        self.counts: dict = {}
+        self.extrema: dict = {}
+        self.samples: dict = {}
+        self.notes: dict = {}
+        self.n_draws = 0
+
+    def _sum(self, name, values):
+        self.sums.setdefault(name, []).append(np.asarray(values, dtype=np.float64).sum(axis=0))
+
+    def _moments(self, name, values):
+        """Chunk count, mean and squared deviations of ``values`` (NaN = no value)."""
+        n, mean, m2 = chunk_moments(values)
+        self.sums.setdefault(name + ":n", []).append(n)
+        self.sums.setdefault(name + ":mean", []).append(mean)
+        self.sums.setdefault(name + ":m2", []).append(m2)
+
+    def _count(self, name, values):
+        v = np.asarray(values, dtype=np.int64)
+        if name in self.counts:
+            self.counts[name] += v
+        else:
+            self.counts[name] = v.copy()
+
+    def _sample(self, name, values):
+        self.samples.setdefault(name, []).append(np.asarray(values))
+
+    def _note(self, rule_name, msg):
+        if msg and rule_name not in self.notes:
+            self.notes[rule_name] = msg
+
+    def result(self, fingerprint) -> BlockResult:
+        sums = {k: np.stack(v) for k, v in self.sums.items()}
+        samples = {k: np.concatenate(v) for k, v in self.samples.items()}
+        return BlockResult(self.block.index, self.block.part, self.block.first_chunk,
+                           self.block.n_chunks, self.n_draws, "" if fingerprint is None
+                           else fingerprint, sums, self.counts, self.extrema, samples,
+                           dict(self.notes))
+
+
+def _beats(metrics, ew):
+    """(R, 2) counts of draws beating 1/N on CEQ and on Sharpe (failed draws never do)."""
+    with np.errstate(invalid="ignore"):
+        return np.stack([(metrics[:, :, 4] > ew[:, None, 4]).sum(axis=0),
+                         (metrics[:, :, 3] > ew[:, None, 3]).sum(axis=0)], axis=1)
+
+
+class _MainAccumulator(_Accumulator):
+    def add_chunk(self, histories, first_draw):
+        ctx, spec = self.ctx, self.ctx.spec
+        d = histories.shape[0]
+        self.n_draws += d
+        moments = _moments_for(ctx, histories)
+        n_rules = len(ctx.rules)
+        weights = np.empty((d, n_rules, ctx.n))
+        metrics = np.empty((d, n_rules, 5))
+        ok = np.empty((d, n_rules), dtype=bool)
+        for i, rs in enumerate(ctx.rules):
+            w, ok[:, i], msg = _rule_weights(ctx, i, moments[i], d)
+            self._note(rs.name, msg)
+            weights[:, i] = w
+            metrics[:, i] = score(w, ctx.mu, ctx.cov, ctx.gamma)
+        cash = 1.0 - weights.sum(axis=2)
+        self._count("ok", ok.sum(axis=0))
+        self._moments("w", weights)
+        self._moments("cash", cash)
+        self._moments("m", metrics)
+        with np.errstate(invalid="ignore"):
+            self._count("held", (np.abs(weights) > spec.hold_threshold).sum(axis=0))
+        self._count("beats", _beats(metrics, metrics[:, ctx.ew]))
+        for i, h in enumerate(ctx.hists):
+            counts = self.counts.setdefault(f"hist{i}", np.zeros((ctx.n, h.n_columns), np.int64))
+            _kernels.bin_counts(np.ascontiguousarray(weights[ok[:, i], i]), h.low, h.width,
+                                h.n_bins, h.zero_tol, counts)
+        wmin = np.where(ok[:, :, None], weights, np.inf).min(axis=0)
+        wmax = np.where(ok[:, :, None], weights, -np.inf).max(axis=0)
+        self.extrema["wmin"] = np.minimum(self.extrema.get("wmin", wmin), wmin)
+        self.extrema["wmax"] = np.maximum(self.extrema.get("wmax", wmax), wmax)
+        keep = max(0, min(d, spec.metric_sample - first_draw))
+        if keep:
+            self._sample("metrics", metrics[:keep])
+        if spec.keep_draws:
+            self._sample("weights", weights)
+        # attribution: true mean + estimated covariance, estimated mean + true covariance
+        att = np.full((d, n_rules, 2, 5), np.nan)
+        att_ok = np.zeros((d, n_rules, 2), dtype=bool)
+        for i, rs in enumerate(ctx.rules):
+            if not ctx.attrib[i]:
+                continue
+            m_est, s_est = moments[i]
+            w_tm, att_ok[:, i, 0], _ = _weights(rs, np.broadcast_to(ctx.mu, m_est.shape), s_est)
+            w_tc, att_ok[:, i, 1], _ = _weights(rs, m_est, np.broadcast_to(ctx.cov, s_est.shape))
+            att[:, i, 0] = score(w_tm, ctx.mu, ctx.cov, ctx.gamma)
+            att[:, i, 1] = score(w_tc, ctx.mu, ctx.cov, ctx.gamma)
+        self._count("att_ok", att_ok.sum(axis=0))
+        self._moments("att", att)
+        # frontiers (Broadie 1993) and the rank-matched averaged frontier (Michaud 1998)
+        fi = ctx.frontier_index
+        if fi is not None:
+            nf = max(0, min(d, spec.frontier_draws - first_draw))
+            k = spec.frontier_points
+            fr = np.full((d, k, 4), np.nan)   # estimated mean, var; actual mean, var
+            fw = np.full((d, k, ctx.n), np.nan)
+            used = 0
+            failed = 0
+            viol = 0
+            if nf:
+                from optimise import efficient_frontier
+
+                cons = ctx.frontier_constraints[0]
+                true = _true_frontier(ctx, cons)
+                m_est, s_est = moments[fi]
+                for j in range(nf):
+                    try:
+                        p = np.asarray(efficient_frontier(m_est[j], s_est[j], cons).points(k),
+                                       dtype=np.float64)
+                    except NoiseproofError as exc:
+                        failed += 1
+                        self._note("frontier", " ".join(str(exc).split()))
+                        continue
+                    fw[j] = p
+                    fr[j, :, 0] = p @ m_est[j]
+                    fr[j, :, 1] = np.einsum("kn,kn->k", p @ s_est[j], p)
+                    fr[j, :, 2] = p @ ctx.mu
+                    fr[j, :, 3] = np.einsum("kn,kn->k", p @ ctx.cov, p)
+                    used += 1
+                    viol += _broadie_violations(true, fr[j, :, 2], fr[j, :, 3])
+            self._moments("fr", fr)
+            self._moments("fw", fw)
+            self._count("frontier_draws", np.array([used, failed]))
+            self._count("broadie_violations", np.array([viol]))
+
+
+def _true_frontier(ctx, cons):
+    """(min-variance mean, max mean, min variance, frontier, cov) of the population."""
+    cached = getattr(ctx, "_true_frontier", None)
+    if cached is None:
+        from optimise import efficient_frontier
+
+        f = efficient_frontier(ctx.mu, ctx.cov, cons)
+        pts = np.asarray(f.points(2), dtype=np.float64)
+        cached = (float(pts[0] @ ctx.mu), float(pts[-1] @ ctx.mu),
+                  float(pts[0] @ ctx.cov @ pts[0]), f, ctx.cov)
+        ctx._true_frontier = cached
+    return cached
+
+
+def _broadie_violations(true, act_mean, act_var, rtol=1e-7) -> int:
+    """Points of an actual frontier lying above the true frontier.
+
+    Broadie (1993): the actual frontier (estimated-frontier portfolios judged under the
+    population) can never lie above the true frontier, since its portfolios satisfy the
+    same constraints and the true frontier is optimal. A point counts as a violation
+    when its variance is below the true frontier's variance at its mean (relative
+    tolerance ``rtol`` of the minimum variance, for the solvers' rounding).
+    """
+    lo, hi, gmv_var, f, cov = true
+    scale = max(gmv_var, 1e-300)
+    bad = int(np.sum(act_mean > hi + rtol * max(abs(hi), 1e-12)))
+    inside = (act_mean >= lo) & (act_mean <= hi)
+    if inside.any():
+        w = np.asarray(f.at_returns(act_mean[inside]), dtype=np.float64)
+        tvar = np.einsum("kn,kn->k", w @ cov, w)
+        bad += int(np.sum(act_var[inside] < tvar - rtol * scale))
+    below = act_mean < lo
+    bad += int(np.sum(act_var[below] < gmv_var - rtol * scale))
+    return bad
+
+
+class _SweepAccumulator(_Accumulator):
+    def add_chunk(self, histories, first_draw):
+        ctx = self.ctx
+        d = histories.shape[0]
+        self.n_draws += d
+        valid = ctx.sweep_valid(self.block.length)
+        moments = _moments_for(ctx, histories, valid)
+        n_rules = len(ctx.rules)
+        metrics = np.full((d, n_rules, 5), np.nan)
+        ok = np.zeros((d, n_rules), dtype=bool)
+        for i, rs in enumerate(ctx.rules):
+            if valid[i]:
+                w, ok[:, i], msg = _rule_weights(ctx, i, moments[i], d)
+                self._note(rs.name, msg)
+                metrics[:, i] = score(w, ctx.mu, ctx.cov, ctx.gamma)
+        self._count("ok", ok.sum(axis=0))
+        self._moments("m", metrics)
+        self._count("beats", _beats(metrics, metrics[:, ctx.ew]))
+
+
+class _CheckAccumulator(_Accumulator):
+    """Plug-in cash-budget mean-variance rule w = S_mle^-1 m / gamma on normal histories."""
+
+    def add_chunk(self, histories, first_draw):
+        ctx = self.ctx
+        d, t, _ = histories.shape
+        self.n_draws += d
+        m = histories.mean(axis=1)
+        dev = histories - m[:, None, :]
+        s = np.matmul(dev.transpose(0, 2, 1), dev) / t
+        w = np.linalg.solve(s, m[:, :, None])[:, :, 0] / ctx.gamma
+        u = score(w, ctx.mu, ctx.cov, ctx.gamma)[:, 4]
+        self._moments("u", u)
+
+
+# --------------------------------------------------------------------------- merging
+
+class _Merger:
+    """Adds block results strictly in plan order; memory bounded by what it keeps."""
+
+    def __init__(self, spec: ResampleSpec):
+        self.spec = spec
+        self.plan = block_plan(spec)
+        self.fp = spec.fingerprint()
+        self.next = 0
+        self.parts: dict = {}
+
+    def add(self, r: BlockResult) -> None:
+        if r.index != self.next:
+            raise SettingsError(f"block {r.index} given where block {self.next} was expected: "
+                                f"merge blocks in plan order, each once")
+        if r.fingerprint != self.fp:
+            raise DataError(f"block {r.index} was computed for a different study (fingerprint "
+                            f"mismatch); recompute it")
+        b = self.plan[r.index]
+        if r.part != b.part or r.first_chunk != b.first_chunk or r.n_draws != b.stop - b.start:
+            raise DataError(f"block {r.index} does not match the plan (part, chunks or draws)")
+        key = (b.part, b.sweep_index)
+        p = self.parts.setdefault(key, {"sums": ChunkSums(), "counts": {}, "extrema": {},
+                                        "samples": {}, "draws": 0, "notes": {}})
+        for k, v in (r.notes or {}).items():
+            p["notes"].setdefault(k, v)
+        p["sums"].add(r.first_chunk, r.sums)
+        for k, v in r.counts.items():
+            p["counts"][k] = p["counts"][k] + v if k in p["counts"] else v.astype(np.int64)
+        for k, v in r.extrema.items():
+            op = np.minimum if k.startswith("wmin") else np.maximum
+            p["extrema"][k] = op(p["extrema"][k], v) if k in p["extrema"] else v
+        for k, v in r.samples.items():
+            p["samples"].setdefault(k, []).append(v)
+        p["draws"] += r.n_draws
+        self.next += 1
+
+    def finish(self) -> "ResampleResult":
+        if self.next != len(self.plan):
+            raise DataError(f"only {self.next} of {len(self.plan)} blocks were merged")
+        return _finalize(self.spec, self.parts)
+
+
+def merge_blocks(spec: ResampleSpec, results: Iterable[BlockResult]) -> "ResampleResult":
+    """Merge block results (an iterable, in plan order) into the study's result.
+
+    Memory stays bounded when ``results`` is a generator (e.g. reading block files one
+    at a time): each block is folded into running totals and dropped.
+    """
+    _spec_iv(spec)
+    spec = spec.resolved()
+    m = _Merger(spec)
+    for r in results:
+        m.add(r)
+    return m.finish()
+
+
+def _run_block_worker(spec, index):  # pragma: no cover - runs in worker processes
+    try:
+        from threadpoolctl import threadpool_limits
+
+        with threadpool_limits(1):
+            return run_block(spec, index)
+    except ImportError:
+        return run_block(spec, index)
+
+
+def run_resampling(spec: ResampleSpec, *, workers: int = 1,
+                   progress: Optional[Callable[[int], None]] = None) -> "ResampleResult":
+    """Run every block of the plan and merge them.
+
+    Parameters
+    ----------
+    spec : ResampleSpec
+    workers : int, default 1
+        Local worker processes; 1 runs in this process. The numbers do not depend on it.
+    progress : callable, optional
+        Called with the number of draws of each finished block (any part).
+
+    Returns
+    -------
+    ResampleResult
+    """
+    _spec_iv(spec)
+    spec = spec.resolved()
+    plan = block_plan(spec)
+    merger = _Merger(spec)
+    if workers <= 1 or len(plan) <= 1:
+        for b in plan:
+            merger.add(run_block(spec, b.index))
+            if progress is not None:
+                progress(b.stop - b.start)
+        return merger.finish()
+    import concurrent.futures as cf
+    import multiprocessing as mp
+
+    ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else None
+    pending = {}
+    done = {}
+    nxt = 0
+    window = 3 * workers
+    with cf.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
+        it = iter(plan)
+        for b in it:
+            pending[pool.submit(_run_block_worker, spec, b.index)] = b
+            if len(pending) >= window:
+                break
+        while pending:
+            finished, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
+            for fut in finished:
+                b = pending.pop(fut)
+                done[b.index] = fut.result()
+                if progress is not None:
+                    progress(b.stop - b.start)
+                nb = next(it, None)
+                if nb is not None:
+                    pending[pool.submit(_run_block_worker, spec, nb.index)] = nb
+            while nxt in done:
+                merger.add(done.pop(nxt))
+                nxt += 1
+    return merger.finish()
+
+
+# --------------------------------------------------------------------------- the result
+
+@dataclass(frozen=True)
+class ResampleResult:
+    """A finished resampling run.
+
+    Attributes
+    ----------
+    summary : dict
+        JSON-ready: ``{"resample", "rules", "frontiers", "sweep", "attribution",
+        "self_check"}`` (see the README for every field; per-period decimals).
+    table_frames : dict of str to DataFrame
+        Tables for ``RUN/tables/<name>.csv``.
+    arrays : dict of str to ndarray, or None
+        Per-draw weights when ``keep_draws``.
+    spec : ResampleSpec
+        The resolved spec that produced it.
+    """
+
+    summary: dict
+    table_frames: dict
+    arrays: Optional[dict]
+    spec: ResampleSpec
+
+    def to_summary(self) -> dict:
+        return self.summary
+
+    def tables(self) -> dict:
+        return self.table_frames
+
+    def draw_arrays(self) -> Optional[dict]:
+        return self.arrays
+
+
+def _metric_dict(row, ppy, prefix="", suffix=""):
+    """{expected_return, variance, volatility, sharpe, ceq} (+ annualised copies)."""
+    er, var, vol, sh, ceq = (float(x) for x in row)
+    out = {f"{prefix}expected_return{suffix}": er, f"{prefix}variance{suffix}": var,
+           f"{prefix}volatility{suffix}": vol, f"{prefix}sharpe{suffix}": sh,
+           f"{prefix}ceq{suffix}": ceq}
+    out.update({f"{prefix}expected_return{suffix}_annualised": er * ppy,
+                f"{prefix}variance{suffix}_annualised": var * ppy,
+                f"{prefix}volatility{suffix}_annualised": vol * math.sqrt(ppy),
+                f"{prefix}sharpe{suffix}_annualised": sh * math.sqrt(ppy),
+                f"{prefix}ceq{suffix}_annualised": ceq * ppy})
+    return out
+
+
+def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
+    import pandas as pd
+
+    from .closed_form import kan_zhou, squared_sharpe
+
+    ctx = _Context(spec)
+    ppy = spec.periods_per_year
+    mu, cov, gamma = ctx.mu, ctx.cov, ctx.gamma
+    assets = list(spec.assets)
+    main = parts[("main", -1)]
+    n = main["draws"]
+    tot = main["sums"].total
+    cnt = main["counts"]
+    names = list(spec.rule_names)
+    tables = {}
+
+    ew_w = np.full(ctx.n, 1.0 / ctx.n)
+    rules_out = {}
+    band_rows, pop_rows, att_rows = [], [], []
+    ok = cnt["ok"]                                                   # (R,) draws with weights
+    nr = np.maximum(ok, 1).astype(np.float64)
+    m_mean, m_sd, m_se = moments_mean_sd_se(tot["m"])          # (R, 5)
+    w_mean, w_sd, _ = moments_mean_sd_se(tot["w"])             # (R, N)
+    c_mean, c_sd, _ = moments_mean_sd_se(tot["cash"])          # (R,)
+    a_mean, a_sd, a_se = moments_mean_sd_se(tot["att"])        # (R, 2, 5)
+    beats = cnt["beats"] / n                                                    # (R, 2)
+    wmin, wmax = main["extrema"]["wmin"], main["extrema"]["wmax"]
+    for i, rs in enumerate(spec.rules):
+        h = ctx.hists[i]
+        hist = cnt[f"hist{i}"]
+        weights = {}
+        for j, a in enumerate(assets):
+            pct = h.percentiles(hist[j], PERCENTILES, float(wmin[i, j]), float(wmax[i, j]))
+            entry = {"mean": float(w_mean[i, j]), "sd": float(w_sd[i, j])}
+            entry.update({f"p{q}": v for q, v in zip(PERCENTILES, pct)})
+            entry.update({"held": float(cnt["held"][i, j] / nr[i]), "min": float(wmin[i, j]),
+                          "max": float(wmax[i, j])})
+            weights[a] = entry
+            band_rows.append({"rule": rs.name, "asset": a, **entry})
+        opt = rs.rule.weights(mu, cov)
+        opt_w = np.asarray(getattr(opt, "weights", opt), dtype=np.float64)
+        opt_m = score(opt_w[None], mu, cov, gamma)[0]
+        avg_m = score(w_mean[i][None], mu, cov, gamma)[0]
+        pop = {}
+        for k, metric in enumerate(METRICS):
+            pop[f"{metric}_mean"] = float(m_mean[i, k])
+            pop[f"{metric}_sd"] = float(m_sd[i, k])
+            pop[f"{metric}_se"] = float(m_se[i, k])
+            pop_rows.append({"rule": rs.name, "metric": metric, "mean": float(m_mean[i, k]),
+                             "sd": float(m_sd[i, k]), "se": float(m_se[i, k]),
+                             "optimum": float(opt_m[k]),
+                             "resampled_allocation": float(avg_m[k])})
+        pop.update({"expected_return_mean_annualised": pop["expected_return_mean"] * ppy,
+                    "variance_mean_annualised": pop["variance_mean"] * ppy,
+                    "volatility_mean_annualised": pop["volatility_mean"] * math.sqrt(ppy),
+                    "sharpe_mean_annualised": pop["sharpe_mean"] * math.sqrt(ppy),
+                    "ceq_mean_annualised": pop["ceq_mean"] * ppy})
+        is_ew = i == ctx.ew
+        for k, key in ((0, "ceq"), (1, "sharpe")):
+            p = float(beats[i, k])
+            pop[f"prob_beats_equal_weight_{key}"] = None if is_ew else p
+            pop[f"prob_beats_equal_weight_{key}_se"] = (None if is_ew else
+                                                        math.sqrt(p * (1 - p) / n))
+        pop["draws_scored"] = int(ok[i])
+        pop["draws_failed"] = int(n - ok[i])
+        if n - ok[i]:
+            pop["failure_note"] = main["notes"].get(rs.name)
+        ew_ceq = float(m_mean[ctx.ew, 4])
+        pop["ceq_gain_vs_equal_weight"] = float(m_mean[i, 4] - ew_ceq)
+        pop["ceq_loss_vs_optimum"] = float(opt_m[4] - m_mean[i, 4])
+        pop["ceq_loss_vs_optimum_annualised"] = pop["ceq_loss_vs_optimum"] * ppy
+        optimum = {"weights": dict(zip(assets, map(float, opt_w))),
+                   "cash": float(1.0 - opt_w.sum()), **_metric_dict(opt_m, ppy)}
+        resampled = {"weights": dict(zip(assets, map(float, w_mean[i]))),
+                     "cash": float(c_mean[i]), **_metric_dict(avg_m, ppy)}
+        entry = {"weights": weights, "cash": {"mean": float(c_mean[i]), "sd": float(c_sd[i])},
+                 "resampled_allocation": resampled, "population": pop, "optimum": optimum,
+                 "estimator": {"mean": rs.mean, "covariance": rs.covariance,
+                               "params": _jsonable({k: v for k, v in rs.params.items()
+                                                    if k not in ("given_mean",
+                                                                 "given_covariance")})}}
+        if ctx.attrib[i]:
+            att = {"ceq_optimum": float(opt_m[4]),
+                   "ceq_estimated_both": float(m_mean[i, 4]),
+                   "ceq_estimated_both_se": float(m_se[i, 4]),
+                   "ceq_true_mean_estimated_covariance": float(a_mean[i, 0, 4]),
+                   "ceq_true_mean_estimated_covariance_se": float(a_se[i, 0, 4]),
+                   "ceq_estimated_mean_true_covariance": float(a_mean[i, 1, 4]),
+                   "ceq_estimated_mean_true_covariance_se": float(a_se[i, 1, 4])}
+            att["loss_estimated_both"] = att["ceq_optimum"] - att["ceq_estimated_both"]
+            att["loss_from_covariance_error"] = (att["ceq_optimum"]
+                                                 - att["ceq_true_mean_estimated_covariance"])
+            att["loss_from_mean_error"] = (att["ceq_optimum"]
+                                           - att["ceq_estimated_mean_true_covariance"])
+            entry["attribution"] = att
+            for case, val, se in (("true mean and covariance", opt_m[4], 0.0),
+                                  ("estimated mean and covariance", m_mean[i, 4], m_se[i, 4]),
+                                  ("true mean, estimated covariance", a_mean[i, 0, 4],
+                                   a_se[i, 0, 4]),
+                                  ("estimated mean, true covariance", a_mean[i, 1, 4],
+                                   a_se[i, 1, 4])):
+                att_rows.append({"rule": rs.name, "case": case, "ceq_mean": float(val),
+                                 "ceq_se": float(se), "ceq_loss": float(opt_m[4] - val)})
+        rules_out[rs.name] = entry
+    tables["weight_bands"] = pd.DataFrame(band_rows)
+    tables["population_metrics"] = pd.DataFrame(pop_rows)
+    if att_rows:
+        tables["attribution"] = pd.DataFrame(att_rows)
+
+    # per-draw metric distribution (first metric_sample draws)
+    samples = main["samples"]
+    if "metrics" in samples:
+        ms = np.concatenate(samples["metrics"])
+        qs = np.round(np.arange(1, 100) / 100.0, 2)
+        qrows = []
+        for i, name in enumerate(names):
+            qv = np.quantile(ms[:, i, :], qs, axis=0)          # (99, 5)
+            for k, metric in enumerate(METRICS):
+                for q, v in zip(qs, qv[:, k]):
+                    qrows.append({"rule": name, "metric": metric, "quantile": float(q),
+                                  "value": float(v)})
+        tables["population_quantiles"] = pd.DataFrame(qrows)
+
+    # frontiers
+    frontiers = {"skipped": "no rule uses both means and covariances (or frontier_points < 2)"}
+    fi = ctx.frontier_index
+    if fi is not None:
+        from optimise import efficient_frontier
+
+        nf = max(int(cnt["frontier_draws"][0]), 1)
+        nf_failed = int(cnt["frontier_draws"][1])
+        k = spec.frontier_points
+        fr_mean, fr_sd, fr_se = moments_mean_sd_se(tot["fr"])          # (K, 4)
+        fw = moments_mean_sd_se(tot["fw"])[0]                            # (K, N)
+        cons, cons_text = ctx.frontier_constraints
+        true_p = np.asarray(efficient_frontier(mu, cov, cons).points(k), dtype=np.float64)
+        true_m = score(true_p, mu, cov, gamma)
+        avg_m = score(fw, mu, cov, gamma)
+        rows = []
+        for r in range(k):
+            rows.append({"rank": r,
+                         "true_expected_return": float(true_m[r, 0]),
+                         "true_volatility": float(true_m[r, 2]),
+                         "estimated_expected_return": float(fr_mean[r, 0]),
+                         "estimated_volatility": float(math.sqrt(max(fr_mean[r, 1], 0.0))),
+                         "actual_expected_return": float(fr_mean[r, 2]),
+                         "actual_volatility": float(math.sqrt(max(fr_mean[r, 3], 0.0))),
+                         "averaged_expected_return": float(avg_m[r, 0]),
+                         "averaged_volatility": float(avg_m[r, 2]),
+                         "estimated_expected_return_se": float(fr_se[r, 0]),
+                         "actual_expected_return_se": float(fr_se[r, 2])})
+        tables["frontiers"] = pd.DataFrame(rows)
+        aw = pd.DataFrame(fw, columns=assets)
+        aw.insert(0, "rank", np.arange(k))
+        tables["averaged_frontier_weights"] = aw
+        frontiers = {
+            "rule": spec.rules[fi].name, "points": k, "draws": int(cnt["frontier_draws"][0]),
+            "draws_failed": nf_failed, "failure_note": main["notes"].get("frontier"),
+            "estimator": {"mean": spec.rules[fi].mean, "covariance": spec.rules[fi].covariance},
+            "constraints": cons_text,
+            "broadie_violations": int(cnt["broadie_violations"][0]),
+            "volatility_convention": "root of the mean variance over draws at each rank",
+            **{col: [row[col] for row in rows] for col in rows[0] if col != "rank"},
+            "averaged_weights": {a: [float(x) for x in fw[:, j]] for j, a in enumerate(assets)},
+        }
+
+    # sweep
+    sweep = {"skipped": "no sweep lengths"}
+    if spec.sweep_lengths:
+        srows = []
+        per_rule = {name: {"lengths": [], "years": [], "prob_beats_equal_weight_ceq": [],
+                           "prob_beats_equal_weight_sharpe": [], "ceq_mean": [], "ceq_se": []}
+                    for name in names}
+        for kk, t in enumerate(spec.sweep_lengths):
+            p = parts[("sweep", kk)]
+            ns = p["draws"]
+            sm, ssd, sse = moments_mean_sd_se(p["sums"].total["m"])
+            valid = ctx.sweep_valid(int(t))
+            for i, name in enumerate(names):
+                ok = valid[i]
+                pb = float(p["counts"]["beats"][i, 0] / ns) if ok and i != ctx.ew else None
+                ps = float(p["counts"]["beats"][i, 1] / ns) if ok and i != ctx.ew else None
+                d = per_rule[name]
+                d["lengths"].append(int(t))
+                d["years"].append(float(t) / ppy)
+                d["prob_beats_equal_weight_ceq"].append(pb)
+                d["prob_beats_equal_weight_sharpe"].append(ps)
+                d["ceq_mean"].append(float(sm[i, 4]) if ok else None)
+                d["ceq_se"].append(float(sse[i, 4]) if ok else None)
+                srows.append({"rule": name, "length": int(t), "years": float(t) / ppy,
+                              "draws": ns, "prob_beats_equal_weight_ceq": pb,
+                              "prob_beats_equal_weight_sharpe": ps,
+                              "ceq_mean": float(sm[i, 4]) if ok else None,
+                              "ceq_se": float(sse[i, 4]) if ok else None,
+                              "too_short": not ok,
+                              "draws_failed": int(ns - p["counts"]["ok"][i]) if ok else None})
+        for i, name in enumerate(names):
+            d = per_rule[name]
+            if i == ctx.ew:
+                d["note"] = "1/N is the comparison"
+                continue
+            order = np.argsort(d["lengths"], kind="stable")
+            for level in (50, 90):
+                hit = [d["lengths"][j] for j in order
+                       if d["prob_beats_equal_weight_ceq"][j] is not None
+                       and d["prob_beats_equal_weight_ceq"][j] >= level / 100.0]
+                d[f"shortest_length_{level}"] = int(hit[0]) if hit else None
+                d[f"shortest_years_{level}"] = float(hit[0]) / ppy if hit else None
+                d[f"shortest_{level}_text"] = (f"{hit[0]} periods ({hit[0] / ppy:g} years)"
+                                               if hit else "none of the tried lengths")
+        sweep = {"draws": spec.n_sweep_draws, "lengths": [int(t) for t in spec.sweep_lengths],
+                 "years": [float(t) / ppy for t in spec.sweep_lengths], "rules": per_rule}
+        tables["sweep"] = pd.DataFrame(srows)
+
+    # self-check (Kan & Zhou 2007)
+    applies, reason = _self_check_applies(spec)
+    if applies:
+        p = parts[("check", -1)]
+        nc = p["draws"]
+        um, usd, use = moments_mean_sd_se(p["sums"].total["u"])
+        th2 = squared_sharpe(mu, cov)
+        kz = kan_zhou(th2, ctx.n, spec.length, gamma)
+        z = (float(um) - kz.expected_utility) / float(use)
+        self_check = {
+            "check": "expected utility of the plug-in cash-budget mean-variance rule "
+                     "w = S^-1 m / gamma with the divisor-T covariance, normal histories "
+                     "from the population (Kan & Zhou 2007, JFQA 42(3))",
+            "length": spec.length, "n_assets": ctx.n, "risk_aversion": gamma,
+            "draws": nc, "theta2": th2, "k1": kz.k1, "k2": kz.k2,
+            "expected_utility_closed_form": kz.expected_utility,
+            "expected_utility_monte_carlo": float(um), "monte_carlo_se": float(use),
+            "standardised_difference": z, "within_3_se": bool(abs(z) < 3.0),
+            "optimum_utility": kz.optimum,
+        }
+    else:
+        self_check = {"skipped": reason}
+
+    gen = ctx.generator.describe()
+    resample = {
+        "generator": gen, "draws": spec.draws, "length": spec.length, "T": spec.length,
+        "seed": spec.seed, "n_assets": ctx.n, "assets": assets,
+        "draw_path": "histories", "draw_setting": spec.draw,
+        "chunk_draws": CHUNK_DRAWS, "block_draws": spec.block_draws,
+        "risk_aversion": gamma, "hold_threshold": spec.hold_threshold,
+        "weight_percentile_resolution": WEIGHT_BIN / 2,
+        "percentile_definition": "inverted empirical distribution function on fixed bins of "
+                                 f"width {WEIGHT_BIN} (bin midpoints; exact zeros kept apart)",
+        "frontier_points": spec.frontier_points,
+        "metric_sample_draws": min(spec.metric_sample, spec.draws),
+        "population": {"source": spec.population_source,
+                       "mean": dict(zip(assets, map(float, mu))),
+                       "volatility": dict(zip(assets, map(float, np.sqrt(np.diag(cov))))),
+                       "covariance_divisor": "T" if spec.history is not None else None},
+        "equal_weight": _metric_dict(score(ew_w[None], mu, cov, gamma)[0], ppy),
+        "estimators": {rs.name: {"mean": rs.mean, "covariance": rs.covariance}
+                       for rs in spec.rules},
+        "spec_fingerprint": spec.fingerprint(),
+    }
+    summary = {"resample": resample, "rules": rules_out, "frontiers": frontiers,
+               "sweep": sweep, "attribution": {name: rules_out[name]["attribution"]
+                                               for name in names
+                                               if "attribution" in rules_out[name]},
+               "self_check": self_check}
+    arrays = None
+    if spec.keep_draws and "weights" in samples:
+        w_all = np.concatenate(samples["weights"])
+        arrays = {"weights": w_all, "rules": np.array(names), "assets": np.array(assets)}
+    return ResampleResult(summary=_jsonable(summary), table_frames=tables, arrays=arrays,
+                          spec=spec)

@@ -1,0 +1,275 @@
+"""The active-set QP kernel: KKT on every solve, batch == loop, warm == cold, numba == plain
+Python twin, and random constrained problems against cvxpy (a general-purpose convex
+solver, used here only as a reference)."""
+import cvxpy as cp
+import numpy as np
+import pytest
+import quadprog
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from optimise import _kernels as K
+from optimise import kkt_residuals, make_rule
+from optimise.rules import _kkt_batch, _run_qp
+
+CVXPY_VERSION = cp.__version__
+
+
+def draws(rng, D, n, T=120):
+    """D (mean, covariance) pairs estimated from resampled histories of one population."""
+    vol = rng.uniform(0.02, 0.07, n)
+    C = 0.3 + 0.7 * np.eye(n)
+    S = C * np.outer(vol, vol)
+    mu = rng.uniform(0.002, 0.012, n)
+    L = np.linalg.cholesky(S)
+    R = mu + rng.standard_normal((D, T, n)) @ L.T
+    means = R.mean(axis=1)
+    Rc = R - means[:, None, :]
+    covs = np.einsum("dti,dtj->dij", Rc, Rc) / (T - 1)
+    return means, covs
+
+
+def random_constraints(rng, assets, long_only):
+    n = len(assets)
+    params = {"long_only": long_only}
+    if rng.random() < 0.6:
+        bounds = {}
+        for a in assets:
+            if rng.random() < 0.5:
+                lo = float(rng.uniform(0, 0.5 / n)) if long_only else float(rng.uniform(-0.5, 0))
+                bounds[a] = [lo, float(lo + rng.uniform(0.2, 0.8))]
+        params["bounds"] = bounds
+    if n >= 3 and rng.random() < 0.5:
+        k = int(rng.integers(2, n))
+        members = list(rng.choice(assets, size=k, replace=False))
+        params["groups"] = {"g1": {"assets": [str(m) for m in members],
+                                   "bounds": [0.2, 0.8]}}
+    return params
+
+
+def cvx_solve(type_, params, mu, S, assets):
+    """The same rule written directly in cvxpy (reference only)."""
+    n = len(mu)
+    w = cp.Variable(n)
+    cons = [cp.sum(w) == 1]
+    lo = np.full(n, 0.0 if params.get("long_only", True) else -np.inf)
+    hi = np.full(n, np.inf)
+    for a, (l, h) in params.get("bounds", {}).items():
+        i = assets.index(a)
+        lo[i] = max(lo[i], l)
+        hi[i] = h
+    for i in range(n):
+        if np.isfinite(lo[i]):
+            cons.append(w[i] >= lo[i])
+        if np.isfinite(hi[i]):
+            cons.append(w[i] <= hi[i])
+    for g in params.get("groups", {}).values():
+        idx = [assets.index(a) for a in g["assets"]]
+        cons += [cp.sum(w[idx]) >= g["bounds"][0], cp.sum(w[idx]) <= g["bounds"][1]]
+    Sp = cp.psd_wrap(S)
+    if type_ == "min-variance":
+        obj = cp.Minimize(cp.quad_form(w, Sp))
+    elif type_ == "mean-variance":
+        obj = cp.Maximize(mu @ w - params["risk_aversion"] / 2 * cp.quad_form(w, Sp))
+    elif type_ == "target-return":
+        obj = cp.Minimize(cp.quad_form(w, Sp))
+        cons.append(mu @ w >= params["target"])
+    prob = cp.Problem(obj, cons)
+    prob.solve(solver="CLARABEL", tol_gap_abs=1e-12, tol_gap_rel=1e-12, tol_feas=1e-12)
+    return np.asarray(w.value), prob.status
+
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(seed=st.integers(0, 2 ** 32 - 1), n=st.integers(2, 8),
+       type_=st.sampled_from(["min-variance", "mean-variance", "target-return"]),
+       long_only=st.booleans())
+def test_random_problems_match_cvxpy(seed, n, type_, long_only):
+    # Reference: cvxpy (CLARABEL), a general-purpose convex solver.
+    rng = np.random.default_rng(seed)
+    assets = tuple(f"x{i}" for i in range(n))
+    params = random_constraints(rng, assets, long_only)
+    if not long_only and "bounds" not in params:
+        params["bounds"] = {a: [-1.0, 1.5] for a in assets}
+    means, covs = draws(rng, 1, n, T=60)
+    mu, S = means[0], covs[0]
+    if type_ == "mean-variance":
+        params["risk_aversion"] = float(rng.uniform(1, 10))
+    try:
+        r = make_rule("r", type_, params, assets) if type_ != "target-return" else None
+        if type_ == "target-return":
+            base = make_rule("r", "min-variance", params, assets)
+            lo = float(mu @ base.weights(mu, S).weights)
+            top, _ = base.constraints.max_return(mu)
+            params["target"] = lo + float(rng.uniform(0, 1)) * (top - lo)
+            r = make_rule("r", type_, params, assets)
+    except Exception as exc:  # random bounds may be infeasible: that must be an InfeasibleError
+        from estimators.core import InfeasibleError
+        assert isinstance(exc, InfeasibleError), exc
+        return
+    alloc = r.weights(mu, S)
+    w = alloc.weights
+    ref, status = cvx_solve(type_, params, mu, S, assets)
+    assert status == "optimal"
+    # objective values agree to ~1e-8; weights are unique (Sigma positive definite)
+    f = {"min-variance": lambda v: v @ S @ v, "target-return": lambda v: v @ S @ v,
+         "mean-variance": lambda v: -(mu @ v - params.get("risk_aversion", 0) / 2 * v @ S @ v)}[type_]
+    assert f(w) <= f(ref) + 1e-9
+    np.testing.assert_allclose(w, ref, atol=2e-5)
+    # KKT with multipliers estimated independently of the solver
+    assert r.check(mu, S, w).max < 1e-8
+    assert alloc.kkt < 1e-9
+
+
+@settings(max_examples=15, deadline=None)
+@given(seed=st.integers(0, 2 ** 32 - 1), n=st.integers(2, 7), long_only=st.booleans())
+def test_random_max_sharpe_matches_cvxpy(seed, n, long_only):
+    # Reference: the homogenised problem written in cvxpy (CLARABEL) and the Sharpe ratio.
+    rng = np.random.default_rng(seed)
+    assets = tuple(f"x{i}" for i in range(n))
+    params = {"long_only": long_only, "risk_free": 0.001}
+    if long_only and rng.random() < 0.5:
+        params["bounds"] = {assets[0]: [0.05, 0.6]}
+    means, covs = draws(rng, 1, n, T=60)
+    mu, S = means[0], covs[0]
+    from estimators.core import InfeasibleError
+    try:
+        w = make_rule("s", "max-sharpe", params, assets).weights(mu, S).weights
+    except InfeasibleError:
+        return
+    y = cp.Variable(n)
+    kappa = cp.Variable()
+    cons = [(mu - 0.001) @ y == 1, cp.sum(y) == kappa, kappa >= 0]
+    if long_only:
+        cons.append(y >= 0)
+        if "bounds" in params:
+            cons += [y[0] >= 0.05 * kappa, y[0] <= 0.6 * kappa]
+    cp.Problem(cp.Minimize(cp.quad_form(y, cp.psd_wrap(S))), cons).solve(solver="CLARABEL")
+    wr = y.value / kappa.value
+    sr = lambda v: (v @ mu - 0.001) / np.sqrt(v @ S @ v)
+    assert sr(w) >= sr(wr) - 1e-8
+    np.testing.assert_allclose(w, wr, atol=1e-5)
+
+
+def test_every_batch_solve_passes_kkt_and_matches_quadprog():
+    # Reference: quadprog (dense Goldfarb-Idnani) on each problem.
+    rng = np.random.default_rng(3)
+    n, D = 12, 300
+    means, covs = draws(rng, D, n)
+    r = make_rule("mv", "mean-variance", {"risk_aversion": 5.0}, n)
+    W, kkt = r.weights_batch_details(means, covs)
+    assert np.max(kkt) < 1e-9
+    Cq = np.hstack([np.ones((n, 1)), np.eye(n)])
+    bq = np.r_[1.0, np.zeros(n)]
+    for d in range(0, D, 10):
+        wq = quadprog.solve_qp(5.0 * covs[d], means[d], Cq, bq, 1)[0]
+        np.testing.assert_allclose(W[d], wq, atol=1e-9)
+        assert r.check(means[d], covs[d], W[d]).max < 1e-10
+
+
+@pytest.mark.parametrize("type_, params", [
+    ("min-variance", {"bounds": {"asset 1": [0.05, 0.3]}}),
+    ("mean-variance", {"risk_aversion": 3.0, "groups": {"g": {"assets": ["asset 1", "asset 2"],
+                                                             "bounds": [0.3, 0.5]}}}),
+    ("max-sharpe", {"risk_free": 0.001}),
+    ("target-return", {"target": 0.007}),
+    ("target-volatility", {"target": 0.035}),
+    ("equal-risk-contribution", {}),
+    ("mean-variance", {"risk_aversion": 4.0, "budget": "cash", "long_only": False}),
+])
+def test_batch_equals_loop(type_, params):
+    rng = np.random.default_rng(5)
+    n, D = 8, 40
+    means, covs = draws(rng, D, n)
+    r = make_rule("r", type_, params, n)
+    W = r.weights_batch(means, covs)
+    loop = np.array([r.weights(means[d], covs[d]).weights for d in range(D)])
+    np.testing.assert_allclose(W, loop, atol=1e-12)
+    if type_ not in ("equal-risk-contribution",):
+        for d in range(0, D, 7):
+            assert r.check(means[d], covs[d], W[d]).max < 1e-9
+
+
+def test_warm_start_does_not_change_results():
+    rng = np.random.default_rng(9)
+    n, D = 20, 200
+    means, covs = draws(rng, D, n)
+    r = make_rule("mv", "mean-variance", {"risk_aversion": 5.0,
+                                          "bounds": {"asset 3": [0.02, 0.2]}}, n)
+    H, c, A, lo, hi, lb, ub = r._qp_problem(means, covs)
+    x0 = np.broadcast_to(r.constraints.feasible_point, (D, n)).copy()
+    Xw, Zw, Nw, sw = _run_qp(H, c, A, lo, hi, lb, ub, x0, warm=True)
+    Xc, Zc, Nc, sc = _run_qp(H, c, A, lo, hi, lb, ub, x0, warm=False)
+    assert np.all(sw == 0) and np.all(sc == 0)
+    np.testing.assert_allclose(Xw, Xc, atol=1e-12)
+    assert np.max(_kkt_batch(H, c, A, lo, hi, lb, ub, Xw, Zw, Nw)) < 1e-10
+    # reversing the order of the problems changes nothing either
+    Xr, *_ = _run_qp(H[::-1], c[::-1], A, lo, hi, lb, ub, x0, warm=True)
+    np.testing.assert_allclose(Xr[::-1], Xw, atol=1e-12)
+
+
+def test_numba_kernels_match_plain_python_twin():
+    twin = K.plain_twin()
+    rng = np.random.default_rng(13)
+    n, D = 6, 12
+    means, covs = draws(rng, D, n)
+    r = make_rule("r", "mean-variance", {"risk_aversion": 4.0,
+                                         "groups": {"g": {"assets": ["asset 1", "asset 2"],
+                                                          "bounds": [0.1, 0.4]}}}, n)
+    H, c, A, lo, hi, lb, ub = r._qp_problem(means, covs)
+    H = np.ascontiguousarray(H)
+    x0 = np.broadcast_to(r.constraints.feasible_point, (D, n)).copy()
+    m = A.shape[1]
+    outs = []
+    for fn in (K.qp_batch, twin["qp_batch"]):
+        X, Z, NU = np.empty((D, n)), np.empty((D, n)), np.empty((D, m))
+        s, it = np.empty(D, np.int64), np.empty(D, np.int64)
+        fn(H, c, A, lo, hi, lb, ub, x0, True, -1, 500, X, Z, NU, s, it)
+        outs.append((X, Z, NU, s, it))
+    for a, b in zip(outs[0], outs[1]):
+        np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-15)
+    outs = []
+    for fn in (K.erc_batch, twin["erc_batch"]):
+        X, s, it = np.empty((D, n)), np.empty(D, np.int64), np.empty(D, np.int64)
+        fn(covs, np.full(n, 1 / n), 1e-14, 100, X, s, it)
+        outs.append((X, s, it))
+    for a, b in zip(outs[0], outs[1]):
+        np.testing.assert_allclose(a, b, rtol=1e-12)
+    outs = []
+    A2, lo2, hi2 = r.constraints.rows()
+    A2 = np.broadcast_to(A2, (D,) + A2.shape)
+    lo2 = np.broadcast_to(lo2, (D, lo2.size))
+    hi2 = np.broadcast_to(hi2, (D, hi2.size))
+    xmax = r._max_returns(means)[1]
+    for fn in (K.target_vol_batch, twin["target_vol_batch"]):
+        X, Z, NU, T = np.empty((D, n)), np.empty((D, n)), np.empty((D, m)), np.empty(D)
+        s = np.empty(D, np.int64)
+        fn(covs, means, A2, lo2, hi2, lb, ub, x0, xmax, 0.035 ** 2, 500, X, Z, NU, T, s)
+        outs.append((X, T, s))
+    for a, b in zip(outs[0], outs[1]):
+        np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-15)
+
+
+def test_kkt_residuals_detect_a_non_optimal_point():
+    # The check can fail: a feasible but non-optimal portfolio has a large residual.
+    rng = np.random.default_rng(2)
+    means, covs = draws(rng, 1, 5)
+    r = make_rule("mv", "mean-variance", {"risk_aversion": 5.0}, 5)
+    w = r.weights(means[0], covs[0]).weights
+    assert r.check(means[0], covs[0], w).max < 1e-10
+    assert r.check(means[0], covs[0], np.full(5, 0.2)).max > 1e-4
+    shifted = w + np.array([0.01, -0.01, 0, 0, 0])
+    res = kkt_residuals(shifted, 5.0 * covs[0], means[0], np.ones((1, 5)), [1.0], [1.0],
+                        np.zeros(5), np.full(5, np.inf))
+    assert res.max > 1e-6 or res.primal > 0
+
+
+def test_large_n_batch_kkt():
+    rng = np.random.default_rng(17)
+    n, D = 60, 50
+    means, covs = draws(rng, D, n)
+    for type_, p in (("mean-variance", {"risk_aversion": 5.0}), ("min-variance", {}),
+                     ("max-sharpe", {})):
+        r = make_rule("r", type_, p, n)
+        W, kkt = r.weights_batch_details(means, covs)
+        assert np.max(kkt) < 1e-9, type_
+        assert np.all(W >= 0) and np.allclose(W.sum(axis=1), 1, atol=1e-12)

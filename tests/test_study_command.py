@@ -1,0 +1,191 @@
+"""`noiseproof study` and the runner: the run folder, its contract, atomic writes, errors.
+
+The data are invented (random numbers with a fixed seed), no real market data.
+"""
+import json
+import os
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from noiseproof.cli import main
+from noiseproof.runner import finish_study, prepare_study, run_study
+from noiseproof.studyfile import load_study
+
+ASSETS = ["Asset A", "Asset B", "Asset C", "Asset D"]
+
+
+def _write_history(folder: Path, periods=150, seed=4):
+    rng = np.random.default_rng(seed)
+    mu = np.array([0.006, 0.004, 0.003, 0.002])
+    vol = np.array([0.045, 0.03, 0.02, 0.012])
+    corr = 0.3 + 0.7 * np.eye(4)
+    x = rng.multivariate_normal(mu, corr * np.outer(vol, vol), size=periods)
+    dates = pd.date_range("2010-01-31", periods=periods, freq="ME")
+    frame = pd.DataFrame(x, columns=ASSETS)
+    frame.insert(0, "date", dates.strftime("%Y-%m-%d"))
+    frame.to_csv(folder / "history.csv", index=False, float_format="%.6f")
+
+
+STUDY = """
+name = "unit-study"
+risk_aversion = 4
+
+[data]
+path = "history.csv"
+kind = "returns"
+
+[estimate]
+mean = "sample"
+covariance = "ledoit-wolf-identity"
+
+[[rules]]
+name = "proposed"
+type = "mean-variance"
+risk_aversion = 4
+
+[[rules]]
+name = "min-var-short"
+type = "min-variance"
+long_only = false
+covariance = "sample"
+
+[resample]
+generator = "normal"
+draws = 200
+length = 60
+seed = 20261201
+sweep_years = [2, 5]
+sweep_draws = 100
+frontier_points = 6
+"""
+
+
+@pytest.fixture
+def study(tmp_path):
+    _write_history(tmp_path)
+    f = tmp_path / "study.toml"
+    f.write_text(STUDY + "\n[backtest]\nwindow = 60\nrebalance_every = 3\ncost_bps = 10\n"
+                 "bootstrap_resamples = 100\n")
+    return f
+
+
+def test_study_command_writes_the_contract(study, tmp_path, capsys):
+    out = tmp_path / "run"
+    rc = main(["study", str(study), "--out", str(out), "--no-pack", "--quiet", "--draws", "150",
+               "--seed", "7"])
+    assert rc == 0
+    s = json.loads((out / "summary.json").read_text())
+    assert s["schema"] == 1 and s["units"] == "per period" and s["periods_per_year"] == 12
+    assert set(s["rules"]) == {"equal-weight", "proposed", "min-var-short"}
+    for name, r in s["rules"].items():
+        assert set(r["in_sample_weights"]) == set(ASSETS)
+        for a in ASSETS:
+            assert {"mean", "p5", "p25", "p50", "p75", "p95", "held"} <= set(r["weights"][a])
+            assert r["weights"][a]["p5"] <= r["weights"][a]["p50"] <= r["weights"][a]["p95"]
+        pop = r["population"]
+        for key in ("expected_return_mean", "variance_mean", "variance_se", "sharpe_mean",
+                    "ceq_mean", "ceq_se", "prob_beats_equal_weight_ceq",
+                    "prob_beats_equal_weight_sharpe", "ceq_mean_annualised"):
+            assert key in pop
+        assert {"ceq", "variance", "sharpe"} <= set(r["optimum"])
+        assert "backtest" in r
+    assert s["rules"]["proposed"]["population"]["prob_beats_equal_weight_ceq"] is not None
+    assert s["rules"]["min-var-short"]["estimator"]["covariance"] == "sample"
+    assert s["rules"]["min-var-short"]["estimator"]["divisor"] == "T-1"
+    assert s["rules"]["proposed"]["estimator"]["covariance"] == "ledoit-wolf-identity"
+    res = s["resample"]
+    assert res["draws"] == 150 and res["seed"] == 7 and res["T"] == 60
+    assert res["generator"]["name"] == "normal" and res["n_assets"] == 4
+    assert res["draw_path"] == "histories"
+    assert res["estimators"]["min-var-short"]["divisor"] == "T-1"
+    assert s["sweep"]["lengths"] == [24, 60]
+    assert s["frontiers"]["points"] == 6 and s["frontiers"]["broadie_violations"] == 0
+    assert s["self_check"]["draws"] > 0 and abs(s["self_check"]["standardised_difference"]) < 4
+    assert s["verdict"]["proposed"] == "proposed"
+    m = json.loads((out / "manifest.json").read_text())
+    for key in ("versions", "platform", "command", "study_text", "seed", "data_sha256",
+                "wall_time_seconds", "reproduce"):
+        assert key in m
+    assert m["seed"] == 7 and m["data_sha256"] == s["data"]["sha256"]
+    assert "--seed 7" in m["reproduce"] and "--draws 150" in m["reproduce"]
+    tables = {p.stem for p in (out / "tables").glob("*.csv")}
+    assert {"weight_bands", "population_metrics", "population_quantiles", "frontiers",
+            "sweep", "attribution", "in_sample_weights"} <= tables
+    assert any(t.startswith("backtest") for t in tables)
+    assert (out / "log.txt").read_text().count("\n") > 3
+    assert not list(tmp_path.glob(".run.*"))
+
+
+def test_workers_do_not_change_the_summary(study, tmp_path):
+    s = load_study(study)
+    one = run_study(s, tmp_path / "one", workers=1, quiet=True, pack=False)
+    two = run_study(s, tmp_path / "two", workers=2, quiet=True, pack=False)
+    a = json.loads((one / "summary.json").read_text())
+    b = json.loads((two / "summary.json").read_text())
+    a["study"].pop("created"), b["study"].pop("created")
+    assert a == b
+
+
+def test_bad_study_is_one_line_and_writes_nothing(tmp_path, capsys):
+    _write_history(tmp_path)
+    f = tmp_path / "study.toml"
+    f.write_text(STUDY.replace('seed = 20261201', 'seed = 20261201\nspeed = 3'))
+    out = tmp_path / "run"
+    assert main(["study", str(f), "--out", str(out), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.count("\n") == 0 and "speed" in err
+    assert not out.exists()
+
+
+def test_a_failed_run_leaves_the_previous_folder_untouched(study, tmp_path, capsys):
+    out = tmp_path / "run"
+    assert main(["study", str(study), "--out", str(out), "--no-pack", "--quiet"]) == 0
+    before = (out / "summary.json").read_bytes()
+    broken = tmp_path / "broken.toml"
+    broken.write_text(STUDY.replace('covariance = "sample"', 'covariance = "no-such-estimator"'))
+    assert main(["study", str(broken), "--out", str(out), "--no-pack", "--quiet"]) == 2
+    assert "no-such-estimator" in capsys.readouterr().err
+    assert (out / "summary.json").read_bytes() == before
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".run")]
+
+
+def test_assumptions_study(tmp_path):
+    (tmp_path / "cma.toml").write_text(
+        'frequency = "monthly"\nassets = ["A", "B", "C"]\n'
+        'expected_return = [0.006, 0.004, 0.002]\nvolatility = [0.045, 0.03, 0.012]\n'
+        'correlation = [[1, 0.3, 0.1], [0.3, 1, 0.2], [0.1, 0.2, 1]]\n')
+    text = ('[data]\nassumptions = "cma.toml"\n[[rules]]\nname = "mv"\ntype = "mean-variance"\n'
+            'risk_aversion = 3\n[resample]\ndraws = 100\nlength = 60\nsweep_years = [5]\n'
+            'sweep_draws = 50\n[backtest]\nwindow = 24\n')
+    f = tmp_path / "s.toml"
+    f.write_text(text)
+    out = run_study(load_study(f), tmp_path / "run", quiet=True, pack=False)
+    s = json.loads((out / "summary.json").read_text())
+    assert s["data"]["assumptions"] is True
+    assert "skipped" in s["backtest"]
+    assert s["resample"]["population"]["source"] == "the capital-market assumptions"
+    np.testing.assert_allclose(list(s["rules"]["mv"]["in_sample_weights"].values()),
+                               list(s["rules"]["mv"]["optimum"]["weights"].values()), atol=1e-9)
+    f.write_text(text.replace("draws = 100", 'draws = 100\ngenerator = "bootstrap"'))
+    from estimators.core import SettingsError
+
+    with pytest.raises(SettingsError, match="resamples a history"):
+        prepare_study(load_study(f))
+    f.write_text(text.replace("length = 60\n", ""))
+    with pytest.raises(SettingsError, match="length is needed"):
+        prepare_study(load_study(f))
+
+
+def test_study_without_resample_section(tmp_path):
+    _write_history(tmp_path)
+    f = tmp_path / "s.toml"
+    f.write_text(STUDY.split("[resample]")[0])
+    prepared = prepare_study(load_study(f))
+    assert prepared.spec is None
+    out = finish_study(prepared, None, tmp_path / "run", pack=False)
+    s = json.loads((out / "summary.json").read_text())
+    assert "skipped" in s["resample"] and "skipped" in s["backtest"]
+    assert s["rules"]["proposed"]["in_sample_weights"]
