@@ -75,30 +75,35 @@ def machine_rates():
             a @ a
         gemm = 2 * 600 ** 3 * reps / (time.perf_counter() - t) / 1e9
         buf = np.empty(2_000_000)
-        rng.standard_normal(out=buf)
-        t = time.perf_counter()
-        for _ in range(5):
-            rng.standard_normal(out=buf)
-        normals = 5 * buf.size / (time.perf_counter() - t)
+        normals = {}
+        for name, bg in (("PCG64", np.random.PCG64), ("SFC64", np.random.SFC64)):
+            g = np.random.Generator(bg(0))
+            g.standard_normal(out=buf)
+            t = time.perf_counter()
+            for _ in range(5):
+                g.standard_normal(out=buf)
+            normals[name] = 5 * buf.size / (time.perf_counter() - t)
     return gemm, normals
 
 
-def floor_rate(n, draws):
-    """Draws/s of: T x N normals, Z L' + mu, and the scatter matrix X'X (chunks of 125)."""
+def floor_rate(n, draws, length=LENGTH):
+    """Draws/s of: T x N normals (SFC64), Z L' + mu, the scatter matrix X'X (chunks of 125)."""
     from threadpoolctl import threadpool_limits
 
     mu, cov = recipe(n)
     lt = np.ascontiguousarray(np.linalg.cholesky(cov).T)
-    rng = np.random.default_rng(1)
+    from simulate.engine import chunk_generator
+
+    rng = chunk_generator(1, 0, 0)          # the engine's bit generator (SFC64)
     d = 125
     with threadpool_limits(1):
         t = time.perf_counter()
         done = 0
         while done < draws:
-            z = rng.standard_normal((d * LENGTH, n))
+            z = rng.standard_normal((d * length, n))
             x = z @ lt
             x += mu
-            x = x.reshape(d, LENGTH, n)
+            x = x.reshape(d, length, n)
             np.matmul(x.transpose(0, 2, 1), x)
             done += d
         return done / (time.perf_counter() - t)
@@ -148,6 +153,9 @@ def quadprog_loop(n, draws):
         t = time.perf_counter()
         for _ in range(draws):
             m, s = _draw_and_estimate(rng, lt, mu, n)
+            # quadprog needs a positive-definite matrix; with T <= N the sample covariance is
+            # singular, so a ridge of 1e-10 times the mean variance is added
+            s[np.diag_indices(n)] += 1e-10 * np.trace(s) / n
             w = quadprog.solve_qp(GAMMA * s, m, c, b, meq=1)[0]
             _score(w, mu, cov)
         return draws / (time.perf_counter() - t)
@@ -155,28 +163,33 @@ def quadprog_loop(n, draws):
 
 # ------------------------------------------------------------------ the engine
 
-def _spec(n, draws):
+def _spec(n, draws, draw="histories", generator="normal", length=LENGTH):
     from optimise import make_rule
-    from simulate import ResampleSpec, RuleSpec
+    from simulate import ResampleSpec, RuleSpec, population_moments
 
     mu, cov = recipe(n)
+    history = None
+    if generator != "normal":
+        # the bootstraps resample a history: 240 rows drawn once from the recipe
+        history = np.random.default_rng(4).multivariate_normal(mu, cov, size=240)
+        mu, cov = population_moments(history)
     assets = tuple(f"asset{i}" for i in range(n))
     rules = (RuleSpec(make_rule("equal-weight", "equal-weight", {}, assets)),
              RuleSpec(make_rule("mv", "mean-variance", {"risk_aversion": GAMMA}, assets),
                       "sample", "sample"))
-    return ResampleSpec(mu, cov, None, assets, rules, "normal", draws, LENGTH, 1, GAMMA,
+    return ResampleSpec(mu, cov, history, assets, rules, generator, draws, length, 1, GAMMA,
                         frontier_points=0, attribution=False, self_check_draws=0,
-                        block_size=1000)
+                        block_size=1000, draw=draw)
 
 
-def engine_rate(n, draws, workers):
+def engine_rate(n, draws, workers, **kw):
     from dataclasses import replace
 
     from threadpoolctl import threadpool_limits
 
     from simulate import run_resampling
 
-    spec = _spec(n, draws)
+    spec = _spec(n, draws, **kw).resolved()
     with threadpool_limits(1):
         run_resampling(replace(spec, draws=250))          # compile / warm caches
         t = time.perf_counter()
@@ -189,7 +202,7 @@ _STARTUP = (
     "import numpy as np;"
     "from benchmarks.bench_simulate import _spec;"
     "from simulate import run_resampling;"
-    "run_resampling(_spec(5, 125));"
+    "run_resampling(_spec(5, 125, draw='histories'));"
     "print(time.perf_counter() - t)"
 )
 
@@ -214,6 +227,7 @@ def main(argv=None):
     ap.add_argument("--quick", action="store_true", help="fewer draws (for a smoke run)")
     ap.add_argument("--sizes", default="10,50,200", help="asset counts, comma separated")
     ap.add_argument("--no-startup", action="store_true", help="skip the cold/warm start-up run")
+    ap.add_argument("--no-moments", action="store_true", help="skip the moments-path table")
     args = ap.parse_args(argv)
     sizes = [int(s) for s in args.sizes.split(",") if s]
     scale = 0.2 if args.quick else 1.0
@@ -223,8 +237,9 @@ def main(argv=None):
           f"{platform.release()}, Python {platform.python_version()}, numpy {np.__version__}")
     print(f"load avg   {_load()} (before)")
     gemm, normals = machine_rates()
-    print(f"rates      matmul {gemm:.1f} GFLOP/s (600x600, one thread); "
-          f"normals {normals / 1e6:.1f} M/s (numpy PCG64 standard_normal)")
+    print(f"rates      matmul {gemm:.1f} GFLOP/s (600x600, one thread); normals "
+          f"{normals['SFC64'] / 1e6:.1f} M/s with SFC64 (the engine's), "
+          f"{normals['PCG64'] / 1e6:.1f} M/s with PCG64 (numpy's default)")
     if not args.no_startup:
         cold, warm = startup_times()
         print(f"start-up   cold {cold:.2f} s (empty numba cache), warm {warm:.2f} s (cached), "
@@ -232,10 +247,10 @@ def main(argv=None):
     rows = []
     for n in sizes:
         d_engine = int({10: 40_000, 50: 10_000, 200: 1_000}.get(n, 2_000) * scale) or 250
-        d_slsqp = max(3, int({10: 200, 50: 40, 200: 4}.get(n, 10) * scale))
+        d_slsqp = max(2, int({10: 200, 50: 40, 200: 3}.get(n, 10) * scale))
         d_qp = max(10, int({10: 3000, 50: 1000, 200: 100}.get(n, 200) * scale))
-        one = engine_rate(n, d_engine, 1)
-        two = engine_rate(n, d_engine, 2)
+        one = engine_rate(n, d_engine, 1, draw="histories")
+        two = engine_rate(n, d_engine, 2, draw="histories")
         fl = floor_rate(n, max(250, d_engine // 2))
         sl = slsqp_loop(n, d_slsqp)
         qp = quadprog_loop(n, d_qp)
@@ -253,7 +268,37 @@ def main(argv=None):
                           f"{qp:,.0f}", f"{fl:,.0f}", f"{one / qp:.2f}x", f"{one / fl:.2f}",
                           f"{target:,}" if target else "-",
                           ("yes" if one >= target else "no") if target else "-"]))
-    print("(draws per second; T = 120, long-only mean-variance, sample estimates, gamma = 3)")
+    print("(draws per second; T = 120, long-only mean-variance, sample estimates, gamma = 3;")
+    print(" the engine on the history path, draw = 'histories')")
+
+    if not args.no_moments:
+        print()
+        print("Moments path (issue 9) vs history path, one core, same study; bootstraps on a "
+              "240-row history")
+        mrows = []
+        for n, t in [(n, LENGTH) for n in sizes] + ([(200, 260)] if 200 in sizes else []):
+            d = int({10: 100_000, 50: 30_000, 200: 2_000}.get(n, 5_000) * scale) or 250
+            hist = engine_rate(n, max(250, d // 3), 1, draw="histories", length=t)
+            mom = (engine_rate(n, d, 1, draw="moments", length=t) if t - 1 >= n else None)
+            fl = floor_rate(n, max(250, d // 3), length=t)
+            boot = engine_rate(n, max(250, d // 3), 1, generator="bootstrap", length=t)
+            bb = engine_rate(n, max(250, d // 3), 1, generator="block-bootstrap", length=t)
+            mrows.append((n, t, mom, hist, fl, boot, bb))
+            print(f"  N={n}, T={t}: done", flush=True)
+        head = ("N", "T", "moments path", "history path", "history floor", "moments/history",
+                "bootstrap", "block bootstrap", "target (moments)", "met")
+        print(" | ".join(head))
+        print(" | ".join("---" for _ in head))
+        mt = {10: 100_000, 50: 25_000}
+        for n, t, mom, hist, fl, boot, bb in mrows:
+            target = mt.get(n) if t == LENGTH else None
+            print(" | ".join([str(n), str(t), "n/a (T-1 < N)" if mom is None else f"{mom:,.0f}",
+                              f"{hist:,.0f}", f"{fl:,.0f}",
+                              "-" if mom is None else f"{mom / hist:.2f}x",
+                              f"{boot:,.0f}", f"{bb:,.0f}",
+                              f"{target:,}" if target else "-",
+                              ("yes" if mom and mom >= target else "no") if target else "-"]))
+        print("(draws per second, one core; bootstrap rates use the history path, as they must)")
     print(f"load avg   {_load()} (after)")
     return 0
 

@@ -979,17 +979,28 @@ class BatchOutcome:
 
 @dataclass(frozen=True)
 class DryRunRow:
-    """One line of ``--dry-run``: a study, its size and whether it can run."""
+    """One line of ``--dry-run``: a study, its size and whether it can run.
+
+    ``seconds`` is a rough single-core estimate of the study's resampling (None without
+    calibration): up to 8 blocks of the first ready study, spread evenly over its block
+    plan, are timed; other studies are scaled by their work, the sum over blocks of
+    draws x rows x rules x assets^2. Backtests and packs come on top.
+    """
 
     name: str
     status: str                 # "ready", "done" (resume would skip it), "error"
     error: Optional[str]
     blocks: int
-    draws: int
+    draws: int                  # draws over all the study's blocks (main, sweep, checks)
     length: Optional[int]
     assets: Optional[int]
     rules: int
-    work: float                 # draws x rules x periods x assets^2 (relative work units)
+    seconds: Optional[float] = None
+
+
+def _block_draws(block) -> int:
+    start, stop = getattr(block, "start", None), getattr(block, "stop", None)
+    return int(stop - start) if start is not None and stop is not None else 0
 
 
 def _spec_numbers(spec, settings: StudySettings) -> tuple:
@@ -1001,8 +1012,23 @@ def _spec_numbers(spec, settings: StudySettings) -> tuple:
     return int(draws or 0), length, n, rules
 
 
+def _time_once(engine: Engine, spec, index: int) -> float:
+    t = time.perf_counter()
+    engine.run_block(spec, index)
+    return time.perf_counter() - t
+
+
+def _time_block(engine: Engine, spec, index: int) -> float:
+    best = math.inf
+    for _ in range(2):  # the faster of two: a cold compile cache does not count
+        t = time.perf_counter()
+        engine.run_block(spec, index)
+        best = min(best, time.perf_counter() - t)
+    return best
+
+
 def dry_run(plan: Plan, *, out: Optional[Path] = None, engine: Optional[Engine] = None,
-            calibrate: bool = False) -> tuple:
+            calibrate: bool = False) -> list:
     """Prepare every study (checking its settings and data) without running the batch.
 
     Parameters
@@ -1012,18 +1038,15 @@ def dry_run(plan: Plan, *, out: Optional[Path] = None, engine: Optional[Engine] 
         An existing batch folder: studies a ``--resume`` would skip are marked ``done``.
     engine : Engine, optional
     calibrate : bool
-        Time block 0 of the first ready study (twice, keeping the faster, so that a cold
-        compile cache does not count) to turn work units into seconds.
+        Time up to 8 blocks of the first ready study to estimate each study's seconds.
 
     Returns
     -------
-    rows : list of DryRunRow
-    seconds_per_unit : float or None
-        Measured seconds of one core per work unit (draws x rules x T x N^2), or None.
+    list of DryRunRow
     """
     engine = engine or default_engine()
-    rows = []
-    per_unit = None
+    found = []
+    model = None  # (seconds, work) of the first ready study
     for st in plan.studies:
         try:
             settings = study_settings(plan, st)
@@ -1032,7 +1055,7 @@ def dry_run(plan: Plan, *, out: Optional[Path] = None, engine: Optional[Engine] 
             spec = engine.spec_of(prepared)
             blocks = list(engine.block_plan(spec)) if spec is not None else []
         except NoiseproofError as exc:
-            rows.append(DryRunRow(st.name, "error", _one_line(exc), 0, 0, None, None, 0, 0.0))
+            found.append((DryRunRow(st.name, "error", _one_line(exc), 0, 0, None, None, 0), None))
             continue
         if spec is not None:
             draws, length, n, rules = _spec_numbers(spec, settings)
@@ -1041,19 +1064,31 @@ def dry_run(plan: Plan, *, out: Optional[Path] = None, engine: Optional[Engine] 
         status = "ready"
         if out is not None and _study_done(Path(out) / "studies" / st.name, fp):
             status = "done"
-        work = float(draws) * rules * (length or 0) * (n or 0) ** 2
-        rows.append(DryRunRow(st.name, status, None, len(blocks), draws, length, n, rules, work))
-        if calibrate and per_unit is None and blocks and work > 0 and status == "ready":
-            b0 = blocks[0]
-            size = (getattr(b0, "stop", 0) - getattr(b0, "start", 0)) or draws / len(blocks)
-            times = []
-            for _ in range(2):
-                t = time.perf_counter()
-                engine.run_block(spec, 0)
-                times.append(time.perf_counter() - t)
-            per_unit = min(times) / (work * size / draws)
+        sizes = [(_block_draws(b), getattr(b, "length", None) or length or 0) for b in blocks]
+        weight = rules * (n or 0) ** 2
+        row = DryRunRow(st.name, status, None, len(blocks), sum(d for d, _ in sizes) or draws,
+                        length, n, rules)
+        found.append((row, (sizes, weight)))
+        if calibrate and model is None and status == "ready" and blocks and weight > 0:
+            # time up to 8 blocks spread evenly over the plan (block costs differ: some
+            # parts carry extra work), block 0 twice so that compiling does not count
+            k = min(8, len(blocks))
+            sample = sorted({round(j * (len(blocks) - 1) / max(k - 1, 1)) for j in range(k)})
+            spent = 0.0
+            for i in sample:
+                spent += _time_block(engine, spec, i) if i == 0 else _time_once(engine, spec, i)
+            per_block = spent / len(sample)
+            model = (per_block * len(blocks), sum(d * t for d, t in sizes) * weight)
         del prepared, spec
-    return rows, per_unit
+    rows = []
+    for row, info in found:
+        if model is not None and info is not None and row.status != "error":
+            sizes, weight = info
+            seconds0, work0 = model
+            work = sum(d * t for d, t in sizes) * weight
+            row = dataclasses.replace(row, seconds=seconds0 * work / work0)
+        rows.append(row)
+    return rows
 
 
 def _one_line(exc: BaseException) -> str:
@@ -1624,15 +1659,17 @@ def _restore_parked_blocks(folder: Path) -> None:
             for p in park.glob("block-*.bin"):
                 if not (old / p.name).exists():
                     os.replace(p, old / p.name)
-            import shutil
+            import shutil as _shutil
 
-            shutil.rmtree(park, ignore_errors=True)
+            _shutil.rmtree(park, ignore_errors=True)
         else:
             os.replace(park, folder / "blocks")
-    for stray in folder.parent.glob(f".{folder.name}.partial-*"):
-        import shutil
+    import shutil
 
-        shutil.rmtree(stray, ignore_errors=True)
+    # the runner's own temporaries for this folder, left by a crash while it wrote them
+    for pattern in (f".{folder.name}.partial-*", f".{folder.name}.old-*"):
+        for stray in folder.parent.glob(pattern):
+            shutil.rmtree(stray, ignore_errors=True)
 
 
 def _finish_study(engine: Engine, prepared, spec, results: list, folder: Path, do_pack: bool,

@@ -73,8 +73,11 @@ def _worker_init() -> None:
     """Initialise a local worker process: one thread each, Ctrl-C handled by the parent."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     for name in _THREAD_VARIABLES:
-        os.environ[name] = "1"
-    try:  # numba may already be imported (by unpickling a task's module); cap its pool
+        # numba re-reads NUMBA_NUM_THREADS at each compile and refuses a value that differs
+        # from its launched pool: cap numba with set_num_threads instead
+        if name != "NUMBA_NUM_THREADS":
+            os.environ[name] = "1"
+    try:
         import numba
 
         numba.set_num_threads(1)

@@ -27,7 +27,7 @@ from typing import Any, Optional, Sequence
 
 import numpy as np
 
-from estimators.core import NoiseproofError, SettingsError
+from estimators.core import SettingsError
 
 from .studyfile import StudySettings, study_risk_aversion
 

@@ -16,10 +16,10 @@ The quadratic programme solved by :func:`qp_solve` is::
 set made of variables fixed at a bound and general rows held at one side. Each
 equality-constrained subproblem is solved through a Cholesky factor of the free block
 ``H_FF`` and the Schur complement of the working rows. When ``H_FF`` is numerically
-singular a tiny ridge (``1e-12`` of the largest diagonal entry) is added to compute the
-step only: such a step is a descent direction of (almost) zero curvature and is cut by the
-ratio test. An unblocked ridge step whose stationarity error exceeds the tolerance means
-the problem has no bounded solution in that direction and is reported as ``SINGULAR``.
+singular (a pivot below ``1e-12`` of the largest diagonal entry) the solver switches to the
+proximal-point method (see :func:`qp_solve`), which handles positive semidefinite ``H``
+exactly; if that iteration does not settle, the problem has no bounded minimiser along a
+zero-curvature direction and is reported as ``SINGULAR``.
 
 Multiplier conventions (stationarity ``H x - c + A' nu - z = 0``):
 
@@ -44,8 +44,11 @@ BAD_START = 3
 OUT_OF_REACH = 4
 NO_CONVERGENCE = 5
 
-_PIVOT_TOL = 1e-13   # relative pivot below which H_FF counts as singular
-_RIDGE = 1e-12       # ridge, relative to the largest diagonal entry of H
+FACTOR_SINGULAR = -1  # internal: H_FF is singular, switch to the proximal-point method
+
+_PIVOT_TOL = 1e-12   # relative pivot below which H_FF counts as singular
+_PROX = 1e-7         # proximal weight delta, relative to the largest diagonal entry of H
+_PROX_MAXOUTER = 5000
 
 
 # ----------------------------------------------------------------------------------------
@@ -91,15 +94,19 @@ def _chol_solve(L, n, v):
 # ----------------------------------------------------------------------------------------
 # the equality-constrained subproblem on the current working set
 # ----------------------------------------------------------------------------------------
-def _eqp(H, c, A, lo, hi, x, vs, rs, hscale, idx, ridx, L, V, S, LS, u, t, xs, nu):
+def _eqp(H, c, A, lo, hi, x, vs, rs, hscale, delta, xk, idx, ridx, L, V, S, LS, u, t, xs, nu,
+         r1, r2):
     """Minimiser of the objective with the working set held at equality.
 
     Writes the free-variable solution into ``xs[:nf]`` (ordered as ``idx``) and the
     working-row multipliers into ``nu`` (zero for rows outside the working set).
 
-    Returns (nf, nr, ridge_used, code) where code is 0 on success, ``k + 1`` when working
-    row ``k`` turned out to depend on the other working constraints (the caller repairs
-    the working set and calls again).
+    The objective is ``1/2 x'Hx - c'x + delta/2 |x - xk|^2`` (``delta = 0`` except in the
+    proximal-point fallback for singular ``H``).
+
+    Returns (nf, nr, code) where code is 0 on success, -1 when ``H_FF`` (plus ``delta``)
+    is numerically singular, and ``k + 1`` when working row ``k`` turned out to depend on
+    the other working constraints (the caller repairs the working set and calls again).
     """
     n = H.shape[0]
     m = A.shape[0]
@@ -117,23 +124,21 @@ def _eqp(H, c, A, lo, hi, x, vs, rs, hscale, idx, ridx, L, V, S, LS, u, t, xs, n
     # right-hand side c_F - H_FB x_B
     for a in range(nf):
         u[a] = c[idx[a]]
+        if delta != 0.0:
+            u[a] += delta * xk[idx[a]]
     for j in range(n):
         if vs[j] != 0 and x[j] != 0.0:
             xj = x[j]
             for a in range(nf):
                 u[a] -= H[j, idx[a]] * xj
-    ridge = 0.0
     if nf > 0:
-        if not _chol_subset(H, idx, nf, L, 0.0, _PIVOT_TOL * hscale):
-            ridge = _RIDGE * hscale
-            if not _chol_subset(H, idx, nf, L, ridge, 0.0):
-                ridge = 1e-8 * hscale
-                _chol_subset(H, idx, nf, L, ridge, 0.0)
+        if not _chol_subset(H, idx, nf, L, delta, _PIVOT_TOL * hscale):
+            return nf, nr, -1
         _chol_solve(L, nf, u)
     if nr == 0:
         for a in range(nf):
             xs[a] = u[a]
-        return nf, nr, ridge > 0.0, 0
+        return nf, nr, 0
     # V = H_FF^-1 A_RF',  S = A_RF V,  t = A_RF u - (b_R - A_RB x_B)
     amax = 0.0
     for r in range(nr):
@@ -160,20 +165,16 @@ def _eqp(H, c, A, lo, hi, x, vs, rs, hscale, idx, ridx, L, V, S, LS, u, t, xs, n
         for a in range(nf):
             s += A[k, idx[a]] * u[a]
         t[r] = s
-    # Cholesky of S with a dependency check row by row
-    sdiag = 0.0
-    for r in range(nr):
-        if S[r, r] > sdiag:
-            sdiag = S[r, r]
-    tol = 1e-12 * sdiag + 1e-300
+    # Cholesky of S with a dependency check row by row: the pivot over S[r, r] is the
+    # squared sine of the angle between row r and the earlier rows (in the H^-1 metric)
     for r in range(nr):
         for q in range(r + 1):
             s = S[r, q]
             for k2 in range(q):
                 s -= LS[r, k2] * LS[q, k2]
             if r == q:
-                if s <= tol:
-                    return nf, nr, ridge > 0.0, ridx[r] + 1
+                if s <= 1e-12 * S[r, r] or s <= 1e-300:
+                    return nf, nr, ridx[r] + 1
                 LS[r, r] = math.sqrt(s)
             else:
                 LS[r, q] = s / LS[q, q]
@@ -185,7 +186,56 @@ def _eqp(H, c, A, lo, hi, x, vs, rs, hscale, idx, ridx, L, V, S, LS, u, t, xs, n
         for r in range(nr):
             s -= V[a, r] * t[r]
         xs[a] = s
-    return nf, nr, ridge > 0.0, 0
+    # iterative refinement: with an ill-conditioned H_FF the Schur-complement solution
+    # loses digits by cancellation (x = u - V nu with large u and V nu); up to three
+    # sweeps on the KKT residuals restore the working rows to round-off
+    for sweep in range(3):
+        worst = 0.0
+        bmax = 1.0
+        for r in range(nr):
+            k = ridx[r]
+            b = lo[k] if rs[k] < 0 else hi[k]
+            s = b
+            for j in range(n):
+                if vs[j] != 0:
+                    s -= A[k, j] * x[j]
+            for a in range(nf):
+                s -= A[k, idx[a]] * xs[a]
+            r2[r] = s
+            worst = max(worst, abs(s))
+            bmax = max(bmax, abs(b))
+        if worst <= 1e-15 * bmax:
+            break
+        for a in range(nf):
+            i = idx[a]
+            s = c[i]
+            if delta != 0.0:
+                s += delta * (xk[i] - xs[a])
+            for j in range(n):
+                if vs[j] != 0 and x[j] != 0.0:
+                    s -= H[j, i] * x[j]
+            for b2 in range(nf):
+                s -= H[idx[b2], i] * xs[b2]
+            for r in range(nr):
+                s -= A[ridx[r], i] * nu[ridx[r]]
+            r1[a] = s
+        if nf > 0:
+            _chol_solve(L, nf, r1)
+        for r in range(nr):
+            k = ridx[r]
+            s = -r2[r]
+            for a in range(nf):
+                s += A[k, idx[a]] * r1[a]
+            r2[r] = s
+        _chol_solve(LS, nr, r2)
+        for r in range(nr):
+            nu[ridx[r]] += r2[r]
+        for a in range(nf):
+            s = r1[a]
+            for r in range(nr):
+                s -= V[a, r] * r2[r]
+            xs[a] += s
+    return nf, nr, 0
 
 
 def _chol_solve_col(L, n, V, col):
@@ -207,6 +257,13 @@ def _chol_solve_col(L, n, V, col):
 # ----------------------------------------------------------------------------------------
 def qp_solve(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i):
     """Solve one QP by the primal active-set method, starting from a feasible ``x``.
+
+    When a free block of ``H`` is numerically singular, the problem is solved by the
+    proximal-point method (Rockafellar 1976, *SIAM J. Control Optim.* 14(5)): a sequence
+    of strictly convex QPs ``min 1/2 x'Hx - c'x + delta/2 |x - x_k|^2``, each solved by the
+    same active-set method warm-started from the last, until ``delta |x_{k+1} - x_k|`` (the
+    stationarity error for the original problem) is below the tolerance. Nothing is
+    regularised in the answer: the multipliers certify the original problem.
 
     Parameters
     ----------
@@ -235,13 +292,51 @@ def qp_solve(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i)
     Returns
     -------
     status : int
-        0 optimal, 1 iteration limit, 2 singular (no bounded minimiser along a
-        zero-curvature direction).
+        0 optimal, 1 iteration limit, 2 singular (the proximal-point iteration did not
+        settle: no bounded minimiser along a zero-curvature direction).
     iterations : int
     """
     n = H.shape[0]
+    xk = np.zeros(n)
+    st, it = _qp_core(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i,
+                      0.0, xk)
+    if st != FACTOR_SINGULAR:
+        return st, it
+    hscale = 0.0
+    gscale = 0.0
+    for i in range(n):
+        hscale = max(hscale, H[i, i])
+        gscale = max(gscale, abs(c[i]))
+    if hscale <= 0.0:
+        hscale = 1.0
+    gscale = max(gscale, hscale)
+    delta = _PROX * hscale
+    for outer in range(_PROX_MAXOUTER):
+        for j in range(n):
+            xk[j] = x[j]
+        st, it2 = _qp_core(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f,
+                           work_i, delta, xk)
+        it += it2
+        if st != OK:
+            return st, it
+        move = 0.0
+        for j in range(n):
+            move = max(move, abs(x[j] - xk[j]))
+        if delta * move <= 1e-12 * gscale:
+            # the multipliers of the last subproblem certify the original problem up to
+            # the stationarity error delta * move
+            return OK, it
+    return SINGULAR, it
+
+
+def _qp_core(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i, delta, xk):
+    """The active-set iterations for ``1/2 x'Hx - c'x + delta/2 |x - xk|^2``.
+
+    Returns (status, iterations) with status -1 when ``H_FF`` is singular (``delta = 0``).
+    """
+    n = H.shape[0]
     m = A.shape[0]
-    L, V, S, LS, u, t, xs, g, idx, ridx = _unpack(work_f, work_i, n, m)
+    L, V, S, LS, u, t, xs, g, r1, r2, idx, ridx = _unpack(work_f, work_i, n, m)
     hscale = 0.0
     for i in range(n):
         if H[i, i] > hscale:
@@ -258,10 +353,18 @@ def qp_solve(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i)
         if lo[k] == hi[k]:
             rs[k] = -1
     it = 0
+    # anti-cycling: multipliers within round-off of zero can make the method drop and
+    # re-add one constraint forever; every (N + M + 5) iterations the dual tolerance
+    # grows tenfold, up to 1e-8 of the gradient scale (far inside the KKT check)
+    period = n + m + 5
     while it < maxiter:
         it += 1
-        nf, nr, ridged, code = _eqp(H, c, A, lo, hi, x, vs, rs, hscale,
-                                    idx, ridx, L, V, S, LS, u, t, xs, nu)
+        if it % period == 0 and dtol < 1e-8 * gscale:
+            dtol *= 10.0
+        nf, nr, code = _eqp(H, c, A, lo, hi, x, vs, rs, hscale, delta, xk,
+                            idx, ridx, L, V, S, LS, u, t, xs, nu, r1, r2)
+        if code < 0:
+            return FACTOR_SINGULAR, it
         if code > 0:
             k = code - 1
             if lo[k] != hi[k]:
@@ -274,7 +377,7 @@ def qp_solve(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i)
                     freed = True
                     break
             if not freed:
-                return MAXITER, it
+                rs[k] = 0          # implied by the other equality rows: redundant
             continue
         # step towards the subproblem minimiser, cut by the ratio test
         xnorm = 1.0
@@ -338,6 +441,8 @@ def qp_solve(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i)
         # solutions are sparse, which makes this O(N nnz) rather than O(N^2).
         for i in range(n):
             g[i] = -c[i]
+            if delta != 0.0:
+                g[i] += delta * (x[i] - xk[i])
         for j in range(n):
             xj = x[j]
             if xj != 0.0:
@@ -348,13 +453,6 @@ def qp_solve(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i)
             nk = nu[k]
             for i in range(n):
                 g[i] += A[k, i] * nk
-        if ridged:
-            worst = 0.0
-            for a in range(nf):
-                if abs(g[idx[a]]) > worst:
-                    worst = abs(g[idx[a]])
-            if worst > 1e-10 * gscale:
-                return SINGULAR, it
         worst = dtol
         wi = -1
         for i in range(n):
@@ -402,15 +500,19 @@ def _unpack(work_f, work_i, n, m):
     xs = work_f[p:p + n]
     p += n
     g = work_f[p:p + n]
+    p += n
+    r1 = work_f[p:p + n]
+    p += n
+    r2 = work_f[p:p + max(m, 1)]
     idx = work_i[0:n]
     ridx = work_i[n:n + max(m, 1)]
-    return L, V, S, LS, u, t, xs, g, idx, ridx
+    return L, V, S, LS, u, t, xs, g, r1, r2, idx, ridx
 
 
 def make_work(n, m):
     """Workspace arrays (float64, int64) for :func:`qp_solve` with N variables, M rows."""
     mm = max(m, 1)
-    nfl = n * n + n * mm + 2 * mm * mm + 3 * n + mm
+    nfl = n * n + n * mm + 2 * mm * mm + 4 * n + 2 * mm
     return np.zeros(nfl), np.zeros(n + mm, dtype=np.int64)
 
 
@@ -825,6 +927,99 @@ def _erc_obj(S, y, b):
 
 
 # ----------------------------------------------------------------------------------------
+# checks on batches (fused passes, no temporaries)
+# ----------------------------------------------------------------------------------------
+def cov_checks(C):
+    """Scan D covariances once: (first draw with a non-finite entry or -1, largest
+    asymmetry relative to the largest entry, first draw with a negative variance or -1)."""
+    D = C.shape[0]
+    n = C.shape[1]
+    bad = -1
+    neg = -1
+    worst = 0.0
+    for d in range(D):
+        big = 0.0
+        asym = 0.0
+        for i in range(n):
+            if C[d, i, i] < 0.0 and neg < 0:
+                neg = d
+            for j in range(n):
+                v = C[d, i, j]
+                if not math.isfinite(v):
+                    if bad < 0:
+                        bad = d
+                    continue
+                if abs(v) > big:
+                    big = abs(v)
+                if j > i:
+                    a = abs(v - C[d, j, i])
+                    if a > asym:
+                        asym = a
+        if big > 0.0 and asym / big > worst:
+            worst = asym / big
+    return bad, worst, neg
+
+
+def kkt_batch(H, c, A, lo, hi, lb, ub, X, Z, NU, out):
+    """Largest KKT residual of each of D solutions, scaled by max(1, |c|, |Hx|).
+
+    Same quantities as :func:`optimise.kkt.kkt_residuals` with given multipliers:
+    stationarity ``|Hx - c + A'nu - z|``, primal violation, dual sign violation and
+    complementarity ``|multiplier| * slack``; the largest of the four, per problem.
+    """
+    D = H.shape[0]
+    n = H.shape[1]
+    m = A.shape[1]
+    g = np.empty(n)
+    for d in range(D):
+        scale = 1.0
+        for i in range(n):
+            g[i] = -c[d, i]
+            if abs(c[d, i]) > scale:
+                scale = abs(c[d, i])
+        for j in range(n):
+            xj = X[d, j]
+            if xj != 0.0:
+                for i in range(n):
+                    g[i] += H[d, j, i] * xj
+        for i in range(n):
+            hx = g[i] + c[d, i]
+            if abs(hx) > scale:
+                scale = abs(hx)
+        worst = 0.0
+        for k in range(m):
+            ax = 0.0
+            nk = NU[d, k]
+            for i in range(n):
+                ax += A[d, k, i] * X[d, i]
+                g[i] += A[d, k, i] * nk
+            v = max(lo[d, k] - ax, ax - hi[d, k], 0.0)
+            if nk > 0.0:
+                if hi[d, k] == np.inf:
+                    v = max(v, nk)
+                elif lo[d, k] != hi[d, k]:
+                    v = max(v, nk * abs(hi[d, k] - ax))
+            elif nk < 0.0:
+                if lo[d, k] == -np.inf:
+                    v = max(v, -nk)
+                elif lo[d, k] != hi[d, k]:
+                    v = max(v, -nk * abs(ax - lo[d, k]))
+            if v > worst:
+                worst = v
+        for i in range(n):
+            zi = Z[d, i]
+            xi = X[d, i]
+            v = max(abs(g[i] - zi), lb[i] - xi, xi - ub[i], 0.0)
+            if zi > 0.0:
+                v = max(v, zi if lb[i] == -np.inf else zi * abs(xi - lb[i]))
+            elif zi < 0.0:
+                v = max(v, -zi if ub[i] == np.inf else -zi * abs(ub[i] - xi))
+            if v > worst:
+                worst = v
+        out[d] = worst / scale
+
+
+# ----------------------------------------------------------------------------------------
 # compile: each name below becomes a numba kernel. :func:`plain_twin` executes this same
 # source with an identity decorator, giving undecorated Python twins for the tests.
 # ----------------------------------------------------------------------------------------
@@ -837,6 +1032,7 @@ _unpack = _compile(_unpack)
 make_work = _compile(make_work)
 _states = _compile(_states)
 _feasible = _compile(_feasible)
+_qp_core = _compile(_qp_core)
 qp_solve = _compile(qp_solve)
 qp_batch = _compile(qp_batch)
 _copy_state = _compile(_copy_state)
@@ -845,6 +1041,8 @@ _quad = _compile(_quad)
 target_vol_batch = _compile(target_vol_batch)
 _erc_obj = _compile(_erc_obj)
 erc_batch = _compile(erc_batch)
+cov_checks = _compile(cov_checks)
+kkt_batch = _compile(kkt_batch)
 
 
 def plain_twin():

@@ -218,16 +218,20 @@ class Rule:
             if cov.ndim != nd + 1 or cov.shape[-2:] != (n, n):
                 raise SettingsError(f"rule '{self.name}': covariance must have shape "
                                     f"{'(D, N, N)' if batch else '(N, N)'} with N = {n}, got {cov.shape}")
-            if not np.all(np.isfinite(cov)):
-                raise SettingsError(f"rule '{self.name}': covariance has NaN or infinite entries")
-            covs = cov.reshape(-1, n, n)
-            asym = np.max(np.abs(covs - covs.transpose(0, 2, 1)), initial=0.0)
-            if asym > 1e-10 * max(1e-300, float(np.max(np.abs(covs), initial=0.0))):
-                raise SettingsError(f"rule '{self.name}': covariance is not symmetric")
-            covs = np.ascontiguousarray(0.5 * (covs + covs.transpose(0, 2, 1)))
-            diag = np.diagonal(covs, axis1=1, axis2=2)
-            if np.any(diag < 0):
-                raise SettingsError(f"rule '{self.name}': covariance has a negative variance")
+            covs = np.ascontiguousarray(cov.reshape(-1, n, n))
+            bad, asym, neg = K.cov_checks(covs)
+            where = (lambda d: f" (draw {d})" if batch else "")
+            if bad >= 0:
+                raise SettingsError(f"rule '{self.name}': covariance has NaN or infinite "
+                                    f"entries{where(bad)}")
+            if asym > 1e-10:
+                raise SettingsError(f"rule '{self.name}': covariance is not symmetric "
+                                    f"(relative asymmetry {asym:.2g})")
+            if asym > 0:    # round-off only: the kernels read both triangles
+                covs = 0.5 * (covs + covs.transpose(0, 2, 1))
+            if neg >= 0:
+                raise SettingsError(f"rule '{self.name}': covariance has a negative "
+                                    f"variance{where(neg)}")
             D = covs.shape[0]
         else:
             covs = None
@@ -294,8 +298,9 @@ class Rule:
             H = covs
             c = np.zeros((D, n))
         elif self.type == "mean-variance":
-            H = covs * self.risk_aversion
-            c = self._excess(means)
+            # the same minimiser as H = gamma Sigma, c = mu, without a (D, N, N) copy
+            H = covs
+            c = self._excess(means) / self.risk_aversion
         elif self.type == "target-return":
             H = covs
             c = np.zeros((D, n))
@@ -605,7 +610,15 @@ def _run_qp(H, c, A, lo, hi, lb, ub, x0, rescale_row=-1, warm=True):
 
 
 def _kkt_batch(H, c, A, lo, hi, lb, ub, X, Z, NU):
-    """Largest KKT residual per problem (D,), scaled by max(1, |c|, |H x|)."""
+    """Largest KKT residual per problem (D,), scaled by max(1, |c|, |H x|) (numba)."""
+    out = np.empty(c.shape[0])
+    K.kkt_batch(np.ascontiguousarray(H), np.ascontiguousarray(c), A, lo, hi, lb, ub,
+                X, Z, NU, out)
+    return out
+
+
+def _kkt_batch_numpy(H, c, A, lo, hi, lb, ub, X, Z, NU):
+    """Plain-numpy reference of :func:`_kkt_batch` (a test compares the two)."""
     Hx = np.einsum("dij,dj->di", H, X)
     grad = Hx - c
     stat = np.abs(grad + np.einsum("dmn,dm->dn", A, NU) - Z).max(axis=1, initial=0.0)

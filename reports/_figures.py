@@ -58,10 +58,16 @@ def weight_bands(assets: Sequence[str], rules: Sequence[dict], equal_weight: Opt
             ax.axvline(equal_weight, color=S.EQUAL_COLOUR, ls=(0, (4, 3)), lw=0.8, label="1/N")
         S.style_axes(ax, xlabel="weight (% of portfolio)", title=r["name"], grid="x")
         S.pct_axis(ax.xaxis)
-        ax.set_xlim(left=min(0.0, ax.get_xlim()[0]))
         ax.set_yticks(y)
         ax.set_yticklabels(assets, fontsize=S.FONT - 0.5)
         ax.tick_params(axis="y", length=0)
+    values = [v for row in rows for key, v in row.items()
+              if key not in ("rule", "asset") and v is not None and np.isfinite(v)]
+    if equal_weight is not None:
+        values.append(equal_weight)
+    lo, hi = min(values + [0.0]), max(values + [0.0])
+    pad = 0.04 * (hi - lo if hi > lo else 1.0)
+    axes[0].set_xlim(lo - pad if lo < 0 else -pad / 2, hi + pad)
     from matplotlib.lines import Line2D
 
     grey = "#7f8793"
@@ -159,7 +165,15 @@ def ranges(panels: Sequence[dict]):
         ax.set_ylim(-0.7, len(y) - 0.3)
         ax.tick_params(axis="y", length=0)
     if handles:
-        fig.legend(list(handles.values()), list(handles.keys()), loc="outside lower center",
+        from matplotlib.lines import Line2D
+
+        grey = "#7f8793"
+        proxy = {"5th to 95th percentile over draws": Line2D([], [], color=grey, lw=1.2),
+                 "25th to 75th percentile": Line2D([], [], color=grey, lw=6, alpha=0.5),
+                 "mean over draws": Line2D([], [], ls="none", marker="o", ms=5, color=grey,
+                                           mec=S.INK, mew=0.6)}
+        labels = list(handles)
+        fig.legend([proxy.get(k, handles[k]) for k in labels], labels, loc="outside lower center",
                    ncol=2, fontsize=S.FONT - 1, frameon=False)
     data = pd.DataFrame(rows, columns=["panel", "rule", "mean", "p5", "p25", "p75", "p95", "optimum"])
     return S.png(fig), WIDTH, height, data
@@ -170,7 +184,7 @@ def grouped_bars(categories: Sequence[str], series: Sequence[dict], xlabel: str,
     """Horizontal grouped bars: one group per category, one bar per series
     (dicts: label, values, colour, hatch)."""
     n, k = len(categories), len(series)
-    height = 1.0 + 0.22 * n * max(1, k) + 0.2
+    height = 1.5 + 0.22 * n * max(1, k)
     fig = S.new_figure(WIDTH, min(height, 8.5))
     ax = fig.subplots()
     y = np.arange(n)[::-1].astype(float)
@@ -189,7 +203,7 @@ def grouped_bars(categories: Sequence[str], series: Sequence[dict], xlabel: str,
     ax.set_yticks(y)
     ax.set_yticklabels(categories, fontsize=S.FONT - 0.5)
     ax.tick_params(axis="y", length=0)
-    _legend(ax, loc="upper center", bbox_to_anchor=(0.5, -0.16 if n < 4 else -0.08), ncol=min(k, 3))
+    fig.legend(loc="outside lower center", ncol=min(k, 3), fontsize=S.FONT - 1, frameon=False)
     return S.png(fig), WIDTH, min(height, 8.5), pd.DataFrame(rows)
 
 

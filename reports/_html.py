@@ -11,7 +11,7 @@ import html
 import json
 
 from . import _style as S
-from ._model import Cell, Figure, Para, Section, Table
+from ._model import Cell, Figure, Para, Table
 
 __all__ = ["render_html"]
 
@@ -56,10 +56,12 @@ figcaption { font-size: 13px; color: var(--muted); margin-top: 5px; }
 figcaption .fig-no, .tab-cap .tab-no { color: var(--ink); font-weight: bold; }
 .tab-wrap { margin: 12px 0 20px; overflow-x: auto; }
 .tab-cap { font-size: 13px; color: var(--muted); margin-bottom: 4px; }
-table { border-collapse: collapse; width: 100%%; font-size: 13px; background: #fff; }
+table { border-collapse: collapse; width: 100%%; font-size: 12.5px; background: #fff; margin-bottom: 6px; }
 th { text-align: left; font-weight: bold; border-bottom: 1.5px solid var(--ink); padding: 5px 7px; vertical-align: bottom; }
 td { border-bottom: 1px solid var(--rule); padding: 4px 7px; vertical-align: top; }
-td.n, th.n { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+td.n, th.n { text-align: right; font-variant-numeric: tabular-nums; }
+td.n { white-space: nowrap; }
+td.label { white-space: nowrap; }
 td.kv-label { width: 34%%; color: var(--muted); }
 td.wrap { word-break: break-all; }
 tr { break-inside: avoid; page-break-inside: avoid; }
@@ -78,7 +80,7 @@ footer.foot { margin-top: 30px; border-top: 1px solid var(--rule); padding-top: 
   html, body { background: #fff; }
   .sheet { margin: 0; border: 0; padding: 0; max-width: none; background: #fff; }
   section { break-before: page; page-break-before: always; }
-  section#s1 { break-before: auto; page-break-before: auto; }
+  section#s1, section.absent { break-before: auto; page-break-before: auto; }
   nav.toc { break-after: page; page-break-after: always; }
   nav.toc a::after { content: ""; }
   a { color: inherit; text-decoration: none; }
@@ -99,7 +101,8 @@ def _cell(c: Cell, tag: str = "td", *, klass: str = "") -> str:
     classes = [klass] if klass else []
     attrs = ""
     if c.numeric:
-        classes.append("n")
+        if "n" not in classes and not klass.startswith("kv"):
+            classes.append("n")
         if c.src:
             attrs += f' data-src="{_e(json.dumps([list(p) for p in c.src]))}"'
             attrs += f' data-op="{_e(c.op)}" data-fmt="{_e(c.fmt)}"'
@@ -117,24 +120,32 @@ def _cell(c: Cell, tag: str = "td", *, klass: str = "") -> str:
 
 def _table(t: Table, number: int) -> str:
     is_kv = t.columns == ("Item", "Value")
-    out = [f'<div class="tab-wrap" id="{_e(t.key)}">',
-           f'<div class="tab-cap"><span class="tab-no">Table {number}.</span> {_e(t.caption)}</div>',
-           f'<table data-table="{_e(t.key)}">']
-    if not is_kv:
-        numeric_cols = [all(r[i].numeric or r[i].text in ("", "n/a") for r in t.rows) and
-                        any(r[i].numeric for r in t.rows) for i in range(len(t.columns))]
-        num_attr = ' class="n"'
-        out.append("<thead><tr>" + "".join(
-            f'<th{num_attr if numeric_cols[i] else ""}>{_e(c)}</th>'
-            for i, c in enumerate(t.columns)) + "</tr></thead>")
-    out.append("<tbody>")
-    for row in t.rows:
-        cells = []
-        for i, c in enumerate(row):
-            klass = "kv-label" if is_kv and i == 0 else ""
-            cells.append(_cell(c, klass=klass))
-        out.append("<tr>" + "".join(cells) + "</tr>")
-    out.append("</tbody></table>")
+    chunks = t.column_chunks(10)
+    numeric = [False] * len(t.columns) if is_kv else t.numeric_columns()
+    out = [f'<div class="tab-wrap" id="{_e(t.key)}">']
+    for part, cols in enumerate(chunks):
+        label = "" if len(chunks) == 1 else f" (part {part + 1} of {len(chunks)})"
+        out.append(f'<div class="tab-cap"><span class="tab-no">Table {number}{label}.</span> '
+                   f'{_e(t.caption)}</div>')
+        out.append(f'<table data-table="{_e(t.key)}">')
+        if not is_kv:
+            out.append("<thead><tr>" + "".join(
+                f'<th class="{"n" if numeric[i] else ("label" if j == 0 and t.first_column_is_label else "")}">'
+                f'{_e(t.columns[i])}</th>' for j, i in enumerate(cols)) + "</tr></thead>")
+        out.append("<tbody>")
+        for row in t.rows:
+            cells = []
+            for j, i in enumerate(cols):
+                c = row[i]
+                if is_kv:
+                    klass = "kv-label" if j == 0 else "kv-value"
+                elif numeric[i]:
+                    klass = "n"
+                else:
+                    klass = "label" if j == 0 and t.first_column_is_label else ""
+                cells.append(_cell(c, klass=klass))
+            out.append("<tr>" + "".join(cells) + "</tr>")
+        out.append("</tbody></table>")
     if t.note:
         out.append(f'<div class="tab-note">{_e(t.note)}</div>')
     out.append("</div>")
@@ -153,7 +164,8 @@ def render_html(title: str, created: str, sections, *, generated: str) -> str:
     fig_no = tab_no = 0
     body = []
     for s in sections:
-        parts = [f'<section id="s{s.number}" data-section="{_e(s.key)}">',
+        absent = ' class="absent"' if s.absent else ""
+        parts = [f'<section id="s{s.number}"{absent} data-section="{_e(s.key)}">',
                  f'<h2><span class="num">{s.number}</span>{_e(s.title)}</h2>']
         for b in s.blocks:
             if isinstance(b, Para):

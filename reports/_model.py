@@ -155,6 +155,21 @@ class Table:
     note: str = ""
     first_column_is_label: bool = True
 
+    def column_chunks(self, max_cols: int) -> list:
+        """Column index lists for printing a wide table in parts that repeat the label column."""
+        n = len(self.columns)
+        if n <= max_cols or not self.first_column_is_label:
+            return [list(range(n))]
+        rest = list(range(1, n))
+        per = max_cols - 1
+        k = -(-len(rest) // per)            # parts needed
+        per = -(-len(rest) // k)            # spread the columns evenly over the parts
+        return [[0] + rest[i:i + per] for i in range(0, len(rest), per)]
+
+    def numeric_columns(self) -> list:
+        """Whether each column holds numbers (then all its cells align right)."""
+        return [any(r[i].numeric for r in self.rows) for i in range(len(self.columns))]
+
     def frame(self) -> pd.DataFrame:
         """The numbers drawn (unrounded, after the stated transformation)."""
         data = []

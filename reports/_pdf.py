@@ -18,14 +18,15 @@ from reportlab.lib.units import mm
 from reportlab.pdfbase import pdfmetrics
 from reportlab.pdfbase.ttfonts import TTFont
 from reportlab.lib.utils import ImageReader
-from reportlab.platypus import (BaseDocTemplate, Flowable, Frame, KeepTogether, PageBreak,
+from reportlab.lib.units import cm
+from reportlab.platypus import (BaseDocTemplate, CondPageBreak, Flowable, Frame, KeepTogether, PageBreak,
                                 PageTemplate, Paragraph, Preformatted, Spacer, Table as RLTable,
                                 TableStyle)
 from reportlab.platypus.tableofcontents import TableOfContents
 from xml.sax.saxutils import escape
 
 from . import _style as S
-from ._model import Cell, Figure, Para, Table
+from ._model import Figure, Para, Table
 
 __all__ = ["render_pdf"]
 
@@ -181,16 +182,11 @@ def _table_flowables(t: Table, number: int, st: dict, width: float) -> list:
     is_kv = t.columns == ("Item", "Value")
     ncols = len(t.columns)
     # wide tables are split into column chunks that repeat the label column
-    chunks = [list(range(ncols))]
-    max_cols = 10
-    if ncols > max_cols and t.first_column_is_label:
-        rest = list(range(1, ncols))
-        per = max_cols - 1
-        chunks = [[0] + rest[i:i + per] for i in range(0, len(rest), per)]
+    chunks = t.column_chunks(10)
+    numeric_all = [False] * ncols if is_kv else t.numeric_columns()
     out = []
     for part, cols in enumerate(chunks):
-        numeric = [any(r[i].numeric for r in t.rows) and all(r[i].numeric or r[i].text in ("", "n/a")
-                                                              for r in t.rows) for i in cols]
+        numeric = [numeric_all[i] for i in cols]
         head = [Paragraph(escape(str(t.columns[i])), st["headnum"] if numeric[j] else st["head"])
                 for j, i in enumerate(cols)]
         data = [] if is_kv else [head]
@@ -299,7 +295,10 @@ def render_pdf(path: Path, title: str, created: str, sections, *, generated: str
     story.append(toc)
     fig_no = tab_no = 0
     for s in sections:
-        story.append(PageBreak())
+        # a section with results starts a page; one that only says why it is empty does not
+        story.append(CondPageBreak(6 * cm) if s.absent else PageBreak())
+        if s.absent:
+            story.append(Spacer(1, 14))
         head = Paragraph(f'<font color="{S.ACCENT}">{s.number}</font>  {escape(s.title)}', st["h1"])
         head._toc_key = f"s{s.number}"
         story.append(head)

@@ -17,9 +17,6 @@ from estimators.core import DataError
 
 __all__ = ["RunFolder", "read_run", "dig"]
 
-_MISSING = object()
-
-
 def dig(mapping: Any, *path, default=None):
     """``mapping[path[0]][path[1]]...`` or ``default`` when any step is missing or null."""
     node = mapping

@@ -103,11 +103,30 @@ def _kv_table(key: str, caption: str, items: list, note: str = "") -> Table:
     return Table(key=key, caption=caption, columns=("Item", "Value"), rows=rows, note=note)
 
 
+def _bound_text(b) -> str:
+    try:
+        lo, hi = (float(x) for x in b)
+    except (TypeError, ValueError):
+        return json.dumps(b)
+    return f"{fmt_value(lo, 'pct1')} to {fmt_value(hi, 'pct1')}"
+
+
 def _fmt_params(params) -> str:
     if not isinstance(params, dict) or not params:
         return "defaults"
     parts = []
     for k, v in params.items():
+        if k == "bounds" and isinstance(v, dict):
+            parts.append("bounds: " + "; ".join(f"{a} {_bound_text(b)}" for a, b in v.items()))
+            continue
+        if k == "groups" and isinstance(v, dict):
+            for g, spec in v.items():
+                if isinstance(spec, dict):
+                    members = ", ".join(map(str, spec.get("assets", [])))
+                    parts.append(f"group {g} ({members}): {_bound_text(spec.get('bounds'))}")
+                else:
+                    parts.append(f"group {g}: {json.dumps(spec)}")
+            continue
         if isinstance(v, dict):
             v = json.dumps(v, separators=(", ", ": "))
         elif isinstance(v, bool):
@@ -117,7 +136,8 @@ def _fmt_params(params) -> str:
 
 
 def _absent(reason: str) -> Para:
-    return Para(f"Not available in this run: {reason}", "absent")
+    reason = reason.rstrip()
+    return Para(f"Not available in this run: {reason}{'' if reason.endswith('.') else '.'}", "absent")
 
 
 # ----------------------------------------------------------------------------- 1 verdict
@@ -173,15 +193,24 @@ def _allocation_table(run: RunFolder, name: str) -> Table:
                      cell(run, ("rules", name, "resampled_allocation", "cash"), fmt="pct1"),
                      Cell(text=fmt_value(0.0, "pct1"), value=0.0, numeric=True),
                      text_cell(""), text_cell("")))
+    columns = ("Asset", "Proposed (in-sample)", "Resampled (averaged)", "1/N",
+               "5th pct over draws", "95th pct over draws")
+    note = ("Proposed: the rule applied to the full history. Resampled (averaged): the mean of "
+            "the rule's allocations over the synthetic histories. Percentiles: the spread of the "
+            "rule's weight across those histories.")
+    # drop the resampling columns when the run has none (e.g. no [resample] section)
+    keep = [i for i in range(len(columns))
+            if i in (0, 1, 3) or any(r[i].text not in ("n/a", "") for r in rows)]
+    if len(keep) < len(columns):
+        columns = tuple(columns[i] for i in keep)
+        rows = [tuple(r[i] for i in keep) for r in rows]
+        why = _skip_reason(run, "resample") or "the run holds no resampled weights"
+        note = ("Proposed: the rule applied to the full history. The resampled (averaged) "
+                f"allocation and the weight percentiles are not available: {why}.")
     return Table(
         key="verdict_allocation",
         caption=f"Proposed allocation ('{name}') beside the resampled (averaged) allocation and 1/N",
-        columns=("Asset", "Proposed (in-sample)", "Resampled (averaged)", "1/N",
-                 "5th pct over draws", "95th pct over draws"),
-        rows=tuple(rows),
-        note=("Proposed: the rule applied to the full history. Resampled (averaged): the mean of "
-              "the rule's allocations over the synthetic histories. Percentiles: the spread of the "
-              "rule's weight across those histories."))
+        columns=columns, rows=tuple(rows), note=note)
 
 
 # ----------------------------------------------------------------------------- 2 inputs
@@ -213,13 +242,15 @@ def _inputs_section(run: RunFolder) -> Section:
         ("SHA-256 of the data", str(dig(d, "sha256", default="n/a"))),
         ("What the file holds", "capital-market assumptions" if dig(d, "assumptions")
          else str(dig(d, "kind", default="n/a"))),
-        ("Frequency", f"{dig(d, 'frequency', default='n/a')} ({run.periods_per_year} periods a year)"),
+        ("Frequency", f"{dig(d, 'frequency', default='n/a')} ({run.periods_per_year} "
+                      f"period{'' if run.periods_per_year == 1 else 's'} a year)"),
         ("Period", period),
         ("Periods (rows used)", cell(run, ("data", "periods"), fmt="int")),
         ("Assets", f"{len(assets)}: " + ", ".join(assets)),
         ("Missing-data policy", str(dig(d, "missing_policy", default="n/a"))),
         ("Rows dropped by that policy", cell(run, ("data", "dropped_rows"), fmt="int")),
-        ("Excess of the risk-free rate", "yes" if dig(d, "excess") else "no"),
+        ("Excess of the risk-free rate", "n/a" if dig(d, "excess") is None
+         else ("yes" if dig(d, "excess") else "no")),
     ]
     if rf_text is None:
         items.append(("Risk-free rate (constant, per period)", cell(run, rf_path, fmt="pct2")))
@@ -768,19 +799,22 @@ def _backtest_section(run: RunFolder) -> Section:
                      cd,
                      cell(run, B + ("ceq_diff_p",), fmt="pval"),
                      cell(run, B + ("psr",), fmt="num3"),
-                     cell(run, B + ("dsr",), fmt="num3")))
+                     cell(run, B + ("dsr",), fmt="num3"),
+                     cell(run, B + ("min_track_record_years",), fmt="num1")))
     if rows:
         blocks.append(Table(
             key="backtest_tests", caption="Tests against 1/N",
             columns=("Rule", "Sharpe diff. (ann.)", "p (JKM)", "p (LW boot.)", "CEQ diff. (ann.)",
-                     "p (CEQ)", "PSR", "DSR"),
+                     "p (CEQ)", "PSR", "DSR", "Min. track record (years)"),
             rows=tuple(rows),
             note=("Differences are the rule minus 1/N. p (JKM): Jobson & Korkie (1981) test with "
                   "Memmel's (2003) correction. p (LW boot.): Ledoit & Wolf (2008) studentised block "
                   "bootstrap. p (CEQ): delta-method test (DeMiguel, Garlappi & Uppal 2009). PSR: "
                   "probability that the true Sharpe ratio exceeds zero (Bailey & Lopez de Prado 2012). "
                   "DSR: the same after deflating for the number of configurations tried (Bailey & "
-                  "Lopez de Prado 2014). p-values are two-sided, 3 decimals.")))
+                  "Lopez de Prado 2014). Min. track record: the history needed for the observed "
+                  "Sharpe ratio to be above zero with 95% confidence (Bailey & Lopez de Prado 2012). "
+                  "p-values are two-sided, 3 decimals.")))
     return Section(7, "backtest", "Out-of-sample backtest", tuple(blocks), True)
 
 
@@ -880,6 +914,17 @@ def _notes_section(run: RunFolder) -> Section:
                   "diversification comes from long-only bounds, and that the method lacks a "
                   "decision-theoretic footing; it is shown here as a diagnostic of weight uncertainty.",
                   "body"))
+    P.append(Para("Estimators. The sample mean is the noisiest input: a few years of data pin down "
+                  "a mean return only to within several percentage points a year, and mean-variance "
+                  "rules act on those differences. Shrinkage estimators (Ledoit-Wolf, Bayes-Stein) "
+                  "trade a little bias for much less variance; their intensity, shown in section 2, "
+                  "says how far the data were pulled toward the target. Rules that ignore means "
+                  "(minimum variance, risk parity) avoid the noisiest input but not the covariance "
+                  "error.", "body"))
+    P.append(Para("Certainty equivalent and risk aversion. CEQ ranks allocations for one investor "
+                  "with the stated risk aversion; another risk aversion can reorder them. All rules "
+                  "here are scored with the same value (section 2). 1/N is the yardstick because it "
+                  "uses no estimates at all, not because it is recommended.", "body"))
     P.append(Para("Backtest statistics. p-values test one rule against 1/N at a time; with several rules "
                   "some will look significant by chance, which the deflated Sharpe ratio partly corrects "
                   "for by counting the configurations tried. Sharpe ratio tests need long samples: a "
@@ -907,7 +952,7 @@ def _repro_section(run: RunFolder) -> Section:
         items.append(("Package versions", ", ".join(f"{k} {v}" for k, v in versions.items())))
     plat = dig(m, "platform")
     if isinstance(plat, dict):
-        plat = ", ".join(f"{k}: {v}" for k, v in plat.items())
+        plat = ", ".join(f"{k}: {v}" for k, v in plat.items() if v not in (None, ""))
     items.append(("Platform", str(plat or "n/a")))
     cmd = dig(m, "command") or dig(m, "argv")
     if isinstance(cmd, list):

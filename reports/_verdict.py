@@ -8,7 +8,7 @@ Three stated criteria, each read from the run's summary (nothing is recomputed):
    population certainty-equivalent return (CEQ) beats 1/N's is at least
    ``min_prob_beats_equal_weight``.
 3. Out-of-sample: in the backtest the proposed rule's Sharpe ratio is above 1/N's, the
-   difference is significant at ``significance`` (Ledoit-Wolf bootstrap p-value; the
+   difference's p-value is at most ``significance`` (Ledoit-Wolf bootstrap p-value; the
    Jobson-Korkie-Memmel p-value when the bootstrap one is absent), and the deflated Sharpe
    ratio, which accounts for the number of configurations tried, is at least
    ``1 - significance``.
@@ -22,7 +22,7 @@ import tomllib
 from dataclasses import dataclass
 from typing import Optional
 
-from ._model import Cell, apply_op, cell, fmt_value
+from ._model import Cell, cell, fmt_value
 from ._run import RunFolder, as_float, dig
 
 __all__ = ["DEFAULTS", "Criterion", "Verdict", "verdict_settings", "proposed_rule", "evaluate"]
@@ -34,29 +34,51 @@ DEFAULTS = {"max_band_width": 0.25, "min_prob_beats_equal_weight": 0.5, "signifi
 EQUAL_WEIGHT = "equal-weight"
 
 
+def _study_verdict_table(run: RunFolder) -> Optional[dict]:
+    """The ``[verdict]`` table of the study text in the manifest ({} when absent; None when
+    the manifest has no readable study text)."""
+    text = dig(run.manifest, "study_text") or dig(run.manifest, "study", "text")
+    if not isinstance(text, str):
+        return None
+    try:
+        table = tomllib.loads(text).get("verdict", {})
+    except tomllib.TOMLDecodeError:
+        return None
+    return table if isinstance(table, dict) else {}
+
+
 def verdict_settings(run: RunFolder) -> tuple[dict, dict]:
-    """Thresholds and, per key, where each came from ("study file" or "default")."""
+    """Thresholds and, per key, where each came from.
+
+    Values: the run summary's ``verdict.settings`` (or ``verdict_settings``) first, then the
+    study text's ``[verdict]`` table, then :data:`DEFAULTS`. Source: "study file" when the
+    study text sets the key, "default" when it does not (or nothing sets it), "run summary"
+    when only the summary holds it and no study text is at hand.
+    """
     found: dict = {}
-    for candidate in (dig(run.summary, "verdict_settings"), dig(run.summary, "verdict", "settings"),
+    for candidate in (dig(run.summary, "verdict", "settings"), dig(run.summary, "verdict_settings"),
                       dig(run.summary, "verdict")):
         if isinstance(candidate, dict):
             for key in DEFAULTS:
                 x = as_float(candidate.get(key))
                 if x is not None and key not in found:
                     found[key] = x
-    text = dig(run.manifest, "study_text") or dig(run.manifest, "study", "text")
-    if isinstance(text, str) and len(found) < len(DEFAULTS):
-        try:
-            table = tomllib.loads(text).get("verdict", {})
-        except tomllib.TOMLDecodeError:
-            table = {}
-        if isinstance(table, dict):
-            for key in DEFAULTS:
-                x = as_float(table.get(key))
-                if x is not None and key not in found:
-                    found[key] = x
-    settings = {k: found.get(k, v) for k, v in DEFAULTS.items()}
-    sources = {k: ("study file" if k in found else "default") for k in DEFAULTS}
+    table = _study_verdict_table(run)
+    settings, sources = {}, {}
+    for key, default in DEFAULTS.items():
+        in_study = table is not None and as_float(table.get(key)) is not None
+        if key in found:
+            settings[key] = found[key]
+        elif in_study:
+            settings[key] = as_float(table[key])
+        else:
+            settings[key] = default
+        if in_study:
+            sources[key] = "study file"
+        elif key in found and table is None:
+            sources[key] = "run summary"
+        else:
+            sources[key] = "default"
     return settings, sources
 
 
@@ -102,10 +124,6 @@ class Verdict:
     groups: tuple        # ((title, status, reason), ...) one per stated criterion
     answer: str
     status: str          # "pass" | "fail" | "open"
-
-
-def _na_cell(reason: str) -> Cell:
-    return Cell(text="n/a", numeric=False)
 
 
 def _status(ok: Optional[bool]) -> str:
@@ -186,7 +204,7 @@ def evaluate(run: RunFolder) -> Verdict:
     pc = cell(run, ("rules", name, "backtest", p_key), fmt="pval")
     dsr = cell(run, ("rules", name, "backtest", "dsr"), fmt="num3")
     oks = [None if diff.value is None else diff.value > 0,
-           None if pc.value is None else pc.value < alpha,
+           None if pc.value is None else pc.value <= alpha + 1e-12,
            None if dsr.value is None else dsr.value >= 1 - alpha - 1e-12]
     why = bt_skip or ""
     if not why and any(o is None for o in oks):
@@ -194,7 +212,7 @@ def evaluate(run: RunFolder) -> Verdict:
     rows.append(Criterion("3a", "Backtest Sharpe ratio minus 1/N's (annualised)", diff,
                           "above 0", _status(oks[0]), why))
     rows.append(Criterion("3b", f"p-value of that difference ({p_label})", pc,
-                          f"below {fmt_value(alpha, 'num3')}", _status(oks[1]), why))
+                          f"at most {fmt_value(alpha, 'num3')}", _status(oks[1]), why))
     rows.append(Criterion("3c", "Deflated Sharpe ratio (for the configurations tried)", dsr,
                           f"at least {fmt_value(1 - alpha, 'num3')}", _status(oks[2]), why))
     if any(o is False for o in oks):

@@ -6,6 +6,7 @@ runners (:func:`block_plan`, :func:`run_block`, :class:`BlockResult`,
 :func:`merge_blocks`).
 """
 from .engine import (  # noqa: F401
+    chunk_generator,
     METRICS,
     PERCENTILES,
     Block,

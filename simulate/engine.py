@@ -30,10 +30,10 @@ from typing import Any, Callable, Iterable, Mapping, Optional
 
 import numpy as np
 
-from estimators.core import DataError, NoiseproofError, SettingsError
+from estimators.core import DataError, InfeasibleError, NoiseproofError, SettingsError
 
 from . import _kernels
-from .generators import GENERATORS, NormalGenerator, make_generator
+from .generators import GENERATORS, NormalGenerator, SampleMoments, make_generator
 from .stats import CHUNK_DRAWS, ChunkSums, WeightHistogram, chunk_moments, moments_mean_sd_se
 
 __all__ = [
@@ -45,6 +45,8 @@ __all__ = [
     "run_block",
     "merge_blocks",
     "run_resampling",
+    "chunk_generator",
+    "draw_path",
     "score",
     "METRICS",
     "PERCENTILES",
@@ -181,6 +183,8 @@ class ResampleSpec:
     self_check_draws: int = 2000
     metric_sample: int = 20000
     population_source: str = ""
+    degrees_of_freedom_fitted: bool = False
+    block_length_automatic: bool = False
 
     # ---- derived, deterministic -------------------------------------------------------
     @property
@@ -211,11 +215,12 @@ class ResampleSpec:
             g = make_generator("student-t", mean=self.population_mean, cov=self.population_cov,
                                history=self.history)
             changes["degrees_of_freedom"] = float(g.degrees_of_freedom)
-            changes["population_source"] = self.population_source
+            changes["degrees_of_freedom_fitted"] = True
         if self.generator == "block-bootstrap" and self.block_length is None:
             g = make_generator("block-bootstrap", mean=self.population_mean,
                                cov=self.population_cov, history=self.history)
             changes["block_length"] = float(g.block_length)
+            changes["block_length_automatic"] = True
         return replace(self, **changes) if changes else self
 
     def fingerprint(self) -> str:
@@ -271,9 +276,9 @@ def _spec_iv(spec: ResampleSpec) -> None:
     if spec.generator in ("bootstrap", "block-bootstrap") and spec.history is None:
         raise SettingsError(f"[resample] generator '{spec.generator}' resamples a history; "
                             f"capital-market assumptions have none (use 'normal' or 'student-t')")
-    if spec.draw == "moments":
-        raise SettingsError("[resample] draw = 'moments' is not available yet; use 'auto' or "
-                            "'histories'")
+    if spec.draw not in ("auto", "histories", "moments"):
+        raise SettingsError(f"[resample] draw = {spec.draw!r} is not one of: auto, histories, "
+                            f"moments")
     if spec.draws < 1 or spec.length < 2:
         raise SettingsError(f"[resample] needs draws >= 1 and length >= 2 (got {spec.draws}, "
                             f"{spec.length})")
@@ -290,6 +295,7 @@ def _spec_iv(spec: ResampleSpec) -> None:
             raise DataError(f"the history must be a finite (T, {n}) array")
     if spec.frontier_rule is not None and spec.frontier_rule not in names:
         raise SettingsError(f"frontier rule {spec.frontier_rule!r} names no rule")
+    draw_path(spec, spec.length)          # raises when draw = "moments" cannot be honoured
     for r in spec.rules:
         need = _min_rows(r, n)
         if need > spec.length:
@@ -297,6 +303,49 @@ def _spec_iv(spec: ResampleSpec) -> None:
                 f"[resample] length = {spec.length} rows is too short for rule '{r.name}' "
                 f"(estimators {r.mean} / {r.covariance} need at least {need} rows for "
                 f"{n} assets)")
+
+
+def _uses_inputs(rs: RuleSpec) -> bool:
+    return bool(getattr(rs.rule, "needs_mean", True) or getattr(rs.rule, "needs_covariance", True))
+
+
+def draw_path(spec: ResampleSpec, length: int, *, strict: bool = True):
+    """How synthetic samples of ``length`` rows are drawn: ``("moments" | "histories", why)``.
+
+    The moments path (draw the sample mean and the Wishart scatter matrix directly) applies
+    when the generator is normal, every rule that uses inputs has estimators that are
+    functions of the sample mean and covariance alone (``estimators.needs_observations``
+    is false: sample mean with the ``sample`` or ``sample-mle`` covariance), and
+    ``T - 1 >= N``. ``draw = "auto"`` takes it exactly then; ``"histories"`` never;
+    ``"moments"`` requires it and raises SettingsError naming what prevents it (with
+    ``strict=False``, e.g. for a sweep length, a singular scatter falls back to histories).
+    """
+    if spec.draw == "histories":
+        return "histories", "draw = 'histories'"
+    reasons = []
+    if spec.generator != "normal":
+        reasons.append(f"the '{spec.generator}' generator has no moments shortcut (only "
+                       f"'normal' has)")
+    try:
+        from estimators import needs_observations
+    except ImportError:  # pragma: no cover - estimators not installed
+        needs_observations = None
+    for rs in spec.rules:
+        if not _uses_inputs(rs):
+            continue
+        if needs_observations is None or needs_observations(rs.mean, rs.covariance):
+            reasons.append(f"rule '{rs.name}' uses the estimators '{rs.mean}' / "
+                           f"'{rs.covariance}', which need the observations themselves")
+    singular = length - 1 < spec.n_assets
+    if singular:
+        reasons.append(f"T - 1 = {length - 1} is below N = {spec.n_assets} (the scatter "
+                       f"matrix would be singular)")
+    if not reasons:
+        return "moments", ("every estimator is a function of the sample mean and covariance "
+                           "of normal draws")
+    if spec.draw == "moments" and (strict or not (singular and len(reasons) == 1)):
+        raise SettingsError("[resample] draw = 'moments' is not possible: " + "; ".join(reasons))
+    return "histories", "; ".join(reasons)
 
 
 def _min_rows(rs: RuleSpec, n: int) -> int:
@@ -540,6 +589,10 @@ class _Context:
                                        else np.ascontiguousarray(s.history, dtype=np.float64),
                                        degrees_of_freedom=s.degrees_of_freedom,
                                        block_length=s.block_length)
+            if s.degrees_of_freedom_fitted and hasattr(self._gen, "fitted"):
+                self._gen = replace(self._gen, fitted=True)
+            if s.block_length_automatic and hasattr(self._gen, "automatic"):
+                self._gen = replace(self._gen, automatic=True)
         return self._gen
 
     @property
@@ -583,6 +636,14 @@ class _Context:
             self._frontier_cons = (cons, text)
             return self._frontier_cons
         raise last
+
+    def path(self, block) -> str:
+        """Draw path of a block: the main part's for main and check, per length for sweeps."""
+        if block.part == "check":
+            # the self-check's plug-in rule uses the sample mean and divisor-T covariance of
+            # normal draws: the moments path applies whenever the main part takes it
+            return draw_path(self.spec, self.spec.length)[0]
+        return draw_path(self.spec, block.length, strict=block.part == "main")[0]
 
     def fixed_weights(self, i: int) -> np.ndarray:
         """Weights of an input-free rule (e.g. 1/N), from one call with the population."""
@@ -630,11 +691,21 @@ def _estimate_batch(histories: np.ndarray, rs: RuleSpec):
     return np.asarray(mb.mean, dtype=np.float64), np.asarray(mb.covariance, dtype=np.float64)
 
 
-def _moments_for(ctx: _Context, histories: np.ndarray, valid=None):
-    """Estimated moments per estimator key for the rules that need them (one chunk)."""
+def _from_sample_moments(sm, rs: RuleSpec):
+    """Estimates from drawn sample moments (moments path): sample mean, S / (T-1) or S / T."""
+    divisor = sm.length - 1 if rs.covariance == "sample" else sm.length
+    return sm.mean, sm.scatter / float(divisor)
+
+
+def _moments_for(ctx: _Context, histories, valid=None):
+    """Estimated moments per estimator key for the rules that need them (one chunk).
+
+    ``histories`` is a (d, T, N) array (history path) or a SampleMoments (moments path).
+    """
     cache = {}
     out = []
     d = histories.shape[0]
+    estimate = _from_sample_moments if isinstance(histories, SampleMoments) else _estimate_batch
     for i, rs in enumerate(ctx.rules):
         if valid is not None and not valid[i]:
             out.append(None)
@@ -644,7 +715,7 @@ def _moments_for(ctx: _Context, histories: np.ndarray, valid=None):
             continue
         key = rs.estimator_key()
         if key not in cache:
-            cache[key] = _estimate_batch(histories, rs)
+            cache[key] = estimate(histories, rs)
         out.append(cache[key])
     return out
 
@@ -697,6 +768,18 @@ def _weights(rs: RuleSpec, means, covs):
 
 # --------------------------------------------------------------------------- block work
 
+def chunk_generator(seed: int, part: int, chunk: int) -> np.random.Generator:
+    """The random generator of one chunk: child ``chunk`` of child ``part`` of the root.
+
+    ``SeedSequence(seed, spawn_key=(part, chunk))`` is exactly
+    ``SeedSequence(seed).spawn(part + 1)[part].spawn(chunk + 1)[chunk]``. The bit generator is
+    numpy's SFC64 (Small Fast Chaotic, 64-bit): about 1.4 times PCG64's rate of normal
+    variates on the benchmark machine, with the same SeedSequence seeding.
+    """
+    ss = np.random.SeedSequence(seed, spawn_key=(part, chunk))
+    return np.random.Generator(np.random.SFC64(ss))
+
+
 def run_block(spec: ResampleSpec, block_index: int) -> BlockResult:
     """Compute one block of the plan. Pure: same spec and index, same bytes.
 
@@ -723,12 +806,15 @@ def run_block(spec: ResampleSpec, block_index: int) -> BlockResult:
     else:
         acc = _CheckAccumulator(ctx, block)
     gen = ctx.check_generator if block.part == "check" else ctx.generator
+    path = ctx.path(block)
     for c in range(block.first_chunk, block.first_chunk + block.n_chunks):
         lo = c * CHUNK_DRAWS
         hi = min(lo + CHUNK_DRAWS, block.stop)
-        ss = np.random.SeedSequence(spec.seed, spawn_key=(block.spawn_part, c))
-        rng = np.random.Generator(np.random.PCG64(ss))
-        histories = gen.draw(rng, hi - lo, block.length)
+        rng = chunk_generator(spec.seed, block.spawn_part, c)
+        if path == "moments":
+            histories = gen.draw_moments(rng, hi - lo, block.length)
+        else:
+            histories = gen.draw(rng, hi - lo, block.length)
         try:
             acc.add_chunk(histories, lo)
         except NoiseproofError as exc:
@@ -936,9 +1022,13 @@ class _CheckAccumulator(_Accumulator):
         ctx = self.ctx
         d, t, _ = histories.shape
         self.n_draws += d
-        m = histories.mean(axis=1)
-        dev = histories - m[:, None, :]
-        s = np.matmul(dev.transpose(0, 2, 1), dev) / t
+        if isinstance(histories, SampleMoments):
+            m = histories.mean
+            s = histories.scatter / t
+        else:
+            m = histories.mean(axis=1)
+            dev = histories - m[:, None, :]
+            s = np.matmul(dev.transpose(0, 2, 1), dev) / t
         w = np.linalg.solve(s, m[:, :, None])[:, :, 0] / ctx.gamma
         u = score(w, ctx.mu, ctx.cov, ctx.gamma)[:, 4]
         self._moments("u", u)
@@ -1144,6 +1234,9 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
     beats = cnt["beats"] / n                                                    # (R, 2)
     wmin, wmax = main["extrema"]["wmin"], main["extrema"]["wmax"]
     for i, rs in enumerate(spec.rules):
+        if ok[i] == 0:
+            raise InfeasibleError(f"rule '{rs.name}' found no allocation in any of the {n} "
+                                  f"resampled histories: {main['notes'].get(rs.name)}")
         h = ctx.hists[i]
         hist = cnt[f"hist{i}"]
         weights = {}
@@ -1327,6 +1420,8 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
                 d[f"shortest_{level}_text"] = (f"{hit[0]} periods ({hit[0] / ppy:g} years)"
                                                if hit else "none of the tried lengths")
         sweep = {"draws": spec.n_sweep_draws, "lengths": [int(t) for t in spec.sweep_lengths],
+                 "draw_paths": [draw_path(spec, int(t), strict=False)[0]
+                                for t in spec.sweep_lengths],
                  "years": [float(t) / ppy for t in spec.sweep_lengths], "rules": per_rule}
         tables["sweep"] = pd.DataFrame(srows)
 
@@ -1349,6 +1444,7 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
             "expected_utility_monte_carlo": float(um), "monte_carlo_se": float(use),
             "standardised_difference": z, "within_3_se": bool(abs(z) < 3.0),
             "optimum_utility": kz.optimum,
+            "draw_path": draw_path(spec, spec.length)[0],
         }
     else:
         self_check = {"skipped": reason}
@@ -1357,7 +1453,8 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
     resample = {
         "generator": gen, "draws": spec.draws, "length": spec.length, "T": spec.length,
         "seed": spec.seed, "n_assets": ctx.n, "assets": assets,
-        "draw_path": "histories", "draw_setting": spec.draw,
+        "draw_path": draw_path(spec, spec.length)[0], "draw_setting": spec.draw,
+        "draw_path_reason": draw_path(spec, spec.length)[1],
         "chunk_draws": CHUNK_DRAWS, "block_draws": spec.block_draws,
         "risk_aversion": gamma, "hold_threshold": spec.hold_threshold,
         "weight_percentile_resolution": WEIGHT_BIN / 2,

@@ -40,6 +40,7 @@ from . import _kernels
 __all__ = [
     "GENERATORS",
     "NormalGenerator",
+    "SampleMoments",
     "StudentTGenerator",
     "BootstrapGenerator",
     "BlockBootstrapGenerator",
@@ -125,8 +126,71 @@ class NormalGenerator:
         x += self.mean
         return x.reshape(count, length, n)
 
+    def draw_moments(self, rng: np.random.Generator, count: int, length: int) -> "SampleMoments":
+        """Sample mean and scatter matrix of ``count`` normal histories, without the histories.
+
+        For iid ``N(mu, Sigma)`` rows the sample mean is ``N(mu, Sigma / T)``, the scatter
+        matrix ``sum (x_t - m)(x_t - m)'`` is Wishart with ``T - 1`` degrees of freedom and
+        scale ``Sigma``, and the two are independent. The Wishart matrix is drawn by the
+        Bartlett decomposition (Smith & Hocking 1972; Odell & Feiveson 1966):
+        ``W = L A A' L'`` with ``A`` lower triangular, ``A_ii = sqrt(chi2(T - 1 - i))``
+        (i = 0 .. N-1) and standard normal ``A_ij`` below the diagonal. Needs
+        ``T - 1 >= N``. Random numbers, in this order: N normals per draw for the mean, N
+        chi-squares, then N (N - 1) / 2 normals.
+
+        Returns
+        -------
+        SampleMoments
+            ``mean`` (count, N) and ``scatter`` (count, N, N), exactly symmetric.
+        """
+        n = self.mean.shape[0]
+        df = length - 1
+        if df < n:
+            raise SettingsError(f"the moments path needs T - 1 >= N (T = {length}, N = {n}): "
+                                f"the scatter matrix would be singular")
+        z = rng.standard_normal((count, n))
+        chi = rng.chisquare(np.arange(df, df - n, -1, dtype=np.float64), size=(count, n))
+        low = rng.standard_normal((count, n * (n - 1) // 2))
+        a = np.zeros((count, n, n))
+        ii = np.arange(n)
+        a[:, ii, ii] = np.sqrt(chi)
+        rows, cols = np.tril_indices(n, -1)
+        a[:, rows, cols] = low
+        b = np.matmul(self._chol_t.T, a)
+        w = np.matmul(b, b.transpose(0, 2, 1))
+        w += w.transpose(0, 2, 1).copy()
+        w *= 0.5
+        mean = z @ self._chol_t
+        mean *= 1.0 / math.sqrt(length)
+        mean += self.mean
+        return SampleMoments(mean=mean, scatter=w, length=int(length))
+
     def describe(self) -> dict:
         return {"name": self.name}
+
+
+@dataclass(frozen=True)
+class SampleMoments:
+    """Drawn sample moments of ``count`` synthetic histories of ``length`` rows.
+
+    Attributes
+    ----------
+    mean : ndarray, shape (count, N)
+        Sample means.
+    scatter : ndarray, shape (count, N, N)
+        ``sum_t (x_t - m)(x_t - m)'``: the sample covariance is ``scatter / (T - 1)``, the
+        maximum-likelihood one ``scatter / T``.
+    length : int
+        T.
+    """
+
+    mean: np.ndarray
+    scatter: np.ndarray
+    length: int
+
+    @property
+    def shape(self):
+        return (self.mean.shape[0], self.length, self.mean.shape[1])
 
 
 @dataclass(frozen=True)

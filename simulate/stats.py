@@ -170,6 +170,8 @@ class WeightHistogram:
         seq_counts = np.concatenate(([under], regular[:split], [zero], regular[split:], [over]))
         seq_values = np.concatenate(([np.nan], centers[:split], [0.0], centers[split:], [np.nan]))
         cum = np.cumsum(seq_counts)
+        if total == 0:
+            return [None for _ in qs]
         out = []
         for q in qs:
             target = max(1, int(math.ceil(q / 100.0 * total - 1e-9)))

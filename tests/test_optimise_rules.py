@@ -46,10 +46,9 @@ def test_unconstrained_frontier_matches_merton(m, var, w):
     mu, S = recipe_b()
     A, B, C, D = merton_abcd(mu, S)
     assert (A * m * m - 2 * B * m + C) / D == pytest.approx(var, rel=1e-10)
-    # target-return with shorting: min variance s.t. w'mu >= m. Below the GMV mean
-    # (0.0691856678) the constraint is slack, so use it as an equality via a tight target
-    # only above the GMV mean; below, compare with the closed form of the lower branch by
-    # solving the equality problem through min-variance of the mirrored target.
+    # target-return with shorting: min variance s.t. w'mu >= m. Above the GMV mean
+    # (B/A = 0.0691856678) the constraint binds and the rule traces Merton's frontier; below
+    # it the constraint is slack and the rule returns the GMV portfolio.
     r = rule("target-return", long_only=False, target=m)
     alloc = r.weights(mu, S)
     if m >= B / A:

@@ -32,7 +32,7 @@ sys.path.insert(0, str(FIXTURES))
 import make_fixture  # noqa: E402
 
 import reports  # noqa: E402
-from estimators.core import DataError, NoiseproofError  # noqa: E402
+from estimators.core import DataError  # noqa: E402
 from noiseproof.cli import main as cli_main  # noqa: E402
 
 SECTION_TITLES = ["Verdict", "Inputs and assumptions", "Weight stability", "Frontiers",
@@ -220,18 +220,21 @@ frontier_points = 7
 sweep_years = [5, 10, 20]
 sweep_draws = 40
 
-[backtest]
-window = 120
-rebalance_every = 3
-cost_bps = 10
-bootstrap_resamples = 50
-
+{backtest}
 [verdict]
 max_band_width = 0.3
 """
 
 
-def _real_run(base: Path, *, rows=None, length=120, risk_free=True) -> Path:
+BACKTEST = """[backtest]
+window = 120
+rebalance_every = 3
+cost_bps = 10
+bootstrap_resamples = 50
+"""
+
+
+def _real_run(base: Path, *, rows=None, length=120, risk_free=True, backtest=True) -> Path:
     """Run a small study on the invented demo market through the real runner (which builds
     the pack itself) and return its run folder."""
     from noiseproof.runner import run_study
@@ -246,7 +249,8 @@ def _real_run(base: Path, *, rows=None, length=120, risk_free=True) -> Path:
     if risk_free:
         shutil.copy(DEMO / "demo_cash.csv", base / "cash.csv")
         rf = 'risk_free_path = "cash.csv"'
-    (base / "study.toml").write_text(REAL_STUDY.format(risk_free=rf, length=length))
+    (base / "study.toml").write_text(REAL_STUDY.format(risk_free=rf, length=length,
+                                                       backtest=BACKTEST if backtest else ""))
     return run_study(load_study(base / "study.toml"), base / "run", quiet=True, pack=True,
                      argv=["noiseproof", "study", str(base / "study.toml")])
 
@@ -266,9 +270,11 @@ def full_run(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def short_run(tmp_path_factory):
-    """A real run on 100 months of history: the 120-month backtest window cannot fit, so the
-    backtest is skipped and the pack must still build and say why."""
-    folder = _real_run(tmp_path_factory.mktemp("short"), rows=100, length=60, risk_free=False)
+    """A real run on 100 months of history without a backtest: the pack must still build and
+    say why section 7 is empty. (The runner raises, rather than skips, when a [backtest] window
+    does not fit the history; the committed fixture covers the "too short" reason.)"""
+    folder = _real_run(tmp_path_factory.mktemp("short"), rows=100, length=60, risk_free=False,
+                       backtest=False)
     return folder, _result(folder)
 
 
@@ -410,7 +416,7 @@ def test_data_csvs_hold_the_numbers_drawn(full_run):
                                rtol=1e-14, equal_nan=True)
     # one CSV per figure and per table
     n_fig = len(re.findall(r"<figure ", result.html.read_text()))
-    n_tab = len(re.findall(r"<table ", result.html.read_text()))
+    n_tab = len(set(re.findall(r'<table data-table="([^"]+)"', result.html.read_text())))
     assert len(list(data.glob("*.csv"))) == n_fig + n_tab
 
 
@@ -663,3 +669,70 @@ def test_a_failed_build_leaves_the_previous_pack_untouched(full_run, monkeypatch
         reports.build_pack(folder)
     assert result.pdf.read_bytes() == before
     assert not list(folder.glob(".pack-*"))
+
+
+# --------------------------------------------------------------------------- figures as drawn
+
+@pytest.fixture(scope="module")
+def drawn_figures(tmp_path_factory):
+    """Every matplotlib Figure of a full pack (hand-made run, 12 assets), captured as drawn."""
+    from reports import _style
+
+    figures = []
+    original = _style.png
+
+    def capture(fig, dpi=180):
+        data = original(fig, dpi=dpi)
+        figures.append(fig)
+        return data
+
+    mp = pytest.MonkeyPatch()
+    mp.setattr(_style, "png", capture)
+    try:
+        folder = make_fixture.make(tmp_path_factory.mktemp("figs") / "run", backtest=True)
+        s = json.loads((folder / "summary.json").read_text())
+        # a rule with short positions: weights below zero must stay inside the axes
+        for w in s["rules"]["min-var"]["weights"].values():
+            w["p5"] -= 0.2
+        (folder / "summary.json").write_text(json.dumps(s))
+        reports.build_pack(folder)
+    finally:
+        mp.undo()
+    return figures, s
+
+
+def _boxes(labels, renderer):
+    return [t.get_window_extent(renderer) for t in labels if t.get_visible() and t.get_text()]
+
+
+def test_figures_label_axes_with_units_and_keep_labels_apart(drawn_figures):
+    figures, _ = drawn_figures
+    assert len(figures) >= 7
+    for fig in figures:
+        renderer = fig.canvas.get_renderer()
+        for ax in fig.axes:
+            xl, yl = ax.get_xlabel(), ax.get_ylabel()
+            assert xl or yl or ax.get_shared_x_axes().get_siblings(ax) != [ax], "axes without a label"
+            for label in (xl, yl):
+                if re.search(r"expected return|volatility|Sharpe ratio|^CEQ|CEQ loss|cost drag", label):
+                    assert "annualised" in label, label
+            for boxes in (_boxes(ax.get_xticklabels(), renderer), _boxes(ax.get_yticklabels(), renderer)):
+                for a, b in zip(boxes, boxes[1:]):
+                    assert not a.overlaps(b), (fig, [t.get_text() for t in ax.get_yticklabels()])
+        # legends and axes titles do not overlap each other's axes' tick labels
+        texts = [t for ax in fig.axes for t in _boxes([ax._left_title, ax.xaxis.label], renderer)]
+        for i, a in enumerate(texts):
+            for b in texts[i + 1:]:
+                assert not a.overlaps(b)
+
+
+def test_weight_bands_keep_every_value_inside_the_axes(drawn_figures):
+    figures, s = drawn_figures
+    assets = s["data"]["assets"]
+    bands = next(f for f in figures if any(ax.get_title(loc="left") == "min-var" for ax in f.axes))
+    ax = next(a for a in bands.axes if a.get_title(loc="left") == "min-var")
+    lo, hi = ax.get_xlim()
+    values = [v for w in s["rules"]["min-var"]["weights"].values() for v in (w["p5"], w["p95"])]
+    assert lo <= min(values) and max(values) <= hi
+    names = [t.get_text() for t in bands.axes[0].get_yticklabels()]
+    assert names == assets                                               # all 12 names shown

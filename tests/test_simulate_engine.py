@@ -12,7 +12,7 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from estimators.core import DataError, NoiseproofError, SettingsError
+from estimators.core import DataError, SettingsError
 from optimise import make_rule
 from simulate import (
     CHUNK_DRAWS,
@@ -183,13 +183,16 @@ def test_truncated_or_corrupt_block_bytes_are_detected():
         BlockResult.from_bytes(b"junk")
 
 
-def test_common_random_numbers_adding_a_rule_changes_nothing_else():
+@pytest.mark.parametrize("draw,extra", [("histories", ("minv", "min-variance", {}, "sample", "oas")),
+                                        ("moments", ("minv", "min-variance", {}, "sample",
+                                                     "sample-mle"))])
+def test_common_random_numbers_adding_a_rule_changes_nothing_else(draw, extra):
     mu, cov = recipe_a(5)
-    one = run_resampling(_spec(mu, cov, [LO_MV], draws=200, frontier_points=0)).to_summary()
-    two = run_resampling(_spec(mu, cov, [LO_MV, ("minv", "min-variance", {}, "sample", "oas")],
-                               draws=200, frontier_points=0)).to_summary()
-    assert json.dumps(one["rules"]["mv"], sort_keys=True) == json.dumps(two["rules"]["mv"],
-                                                                         sort_keys=True)
+    one = run_resampling(_spec(mu, cov, [LO_MV], draws=200, frontier_points=0, draw=draw))
+    two = run_resampling(_spec(mu, cov, [LO_MV, extra], draws=200, frontier_points=0, draw=draw))
+    assert one.to_summary()["resample"]["draw_path"] == draw
+    assert json.dumps(one.to_summary()["rules"]["mv"], sort_keys=True) == json.dumps(
+        two.to_summary()["rules"]["mv"], sort_keys=True)
 
 
 # ---------------------------------------------------------------- statistics
@@ -336,7 +339,49 @@ def test_spec_validation():
         run_resampling(replace(spec, rules=spec.rules[1:]))
     with pytest.raises(SettingsError, match="length >= 2"):
         run_resampling(replace(spec, length=1))
-    with pytest.raises(SettingsError, match="moments"):
-        run_resampling(replace(spec, draw="moments"))
+    lw = _spec(mu, cov, [("lw", "min-variance", {}, "sample", "ledoit-wolf-identity")], draws=10)
+    with pytest.raises(SettingsError, match="'ledoit-wolf-identity', which need the observations"):
+        run_resampling(replace(lw, draw="moments"))
+    with pytest.raises(SettingsError, match="T - 1 = 2 is below N = 3"):
+        run_resampling(replace(spec, draw="moments", length=3))
     with pytest.raises(DataError, match="NaN"):
         run_resampling(replace(spec, population_mean=np.array([np.nan, 0, 0])))
+
+
+@pytest.mark.parametrize("generator", ["normal", "student-t", "bootstrap", "block-bootstrap"])
+def test_every_generator_runs_through_the_engine(generator):
+    rng = np.random.default_rng(8)
+    mu, cov = recipe_a(4)
+    history = rng.multivariate_normal(mu, cov, size=150)
+    from simulate import population_moments
+
+    pm, pc = population_moments(history)
+    spec = replace(_spec(pm, pc, [LO_MV], draws=130, frontier_points=4, frontier_draws=20,
+                         sweep_lengths=(36,), sweep_draws=30, self_check_draws=130),
+                   history=history, generator=generator)
+    a = run_resampling(spec)
+    s = a.to_summary()
+    assert s["resample"]["generator"]["name"] == generator
+    if generator == "student-t":
+        assert s["resample"]["generator"]["degrees_of_freedom_source"].startswith("fitted")
+        assert s["resample"]["generator"]["degrees_of_freedom"] > 2
+    if generator == "block-bootstrap":
+        assert s["resample"]["generator"]["block_length"] >= 1
+    if generator == "normal":
+        assert "standardised_difference" in s["self_check"]
+    else:
+        assert "normal" in s["self_check"]["skipped"]
+    assert s["frontiers"]["broadie_violations"] == 0
+    assert _dump(run_resampling(spec, workers=2)) == _dump(a)
+
+
+def test_a_rule_that_never_finds_an_allocation_is_an_error():
+    """max-sharpe with every population mean negative and very long histories: no draw has a
+    portfolio with positive expected return, so the study stops with a clear message."""
+    from estimators.core import InfeasibleError
+
+    mu = np.array([-0.01, -0.02])
+    cov = np.diag([0.001, 0.002])
+    with pytest.raises(InfeasibleError, match="no allocation in any"):
+        run_resampling(_spec(mu, cov, [("ms", "max-sharpe", {}, "sample", "sample")], draws=20,
+                             length=2000, frontier_points=0, attribution=False))

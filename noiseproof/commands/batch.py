@@ -46,7 +46,7 @@ def register(sub) -> None:
                         "recompute corrupt blocks, take over a stale lock")
     p.add_argument("--dry-run", action="store_true",
                    help="list the studies with the work each needs (prepares every study and "
-                        "times one block), run nothing")
+                        "times a few blocks of the first), run nothing")
     p.add_argument("--quiet", action="store_true", help="no progress display or messages")
     p.add_argument("--no-pack", action="store_true", help="build no evidence packs")
     p.add_argument("--packs", nargs="+", metavar="WHICH", default=None,
@@ -116,7 +116,8 @@ def _dry_run(plan, out, args) -> int:
     from .. import batch
 
     t0 = time.time()
-    rows, per_unit = batch.dry_run(plan, out=out if args.resume else None, calibrate=True)
+    rows = batch.dry_run(plan, out=out if args.resume else None, calibrate=True)
+    timed = any(r.seconds is not None for r in rows)
     if args.scheduler is not None:
         slots, where = None, f"the cluster at {args.scheduler}"
     elif args.dask_local is not None:
@@ -131,7 +132,7 @@ def _dry_run(plan, out, args) -> int:
     total_blocks = total_draws = 0
     total_seconds = 0.0
     for r in rows:
-        secs = r.work * per_unit if per_unit is not None else None
+        secs = r.seconds
         if r.status == "ready":
             total_blocks += r.blocks
             total_draws += r.draws
@@ -146,13 +147,13 @@ def _dry_run(plan, out, args) -> int:
     errors = sum(1 for r in rows if r.status == "error")
     print(f"to run: {sum(1 for r in rows if r.status == 'ready')} studies, {total_blocks} blocks, "
           f"{total_draws} draws; {errors} with errors")
-    if per_unit is not None:
+    if timed:
         if slots:
             print(f"rough time: {total_seconds / slots / 60:.1f} min on {where} "
-                  f"({total_seconds / 60:.1f} min of one core; resampling only, from timing one "
-                  f"block; backtests and packs come on top)")
+                  f"({total_seconds / 60:.1f} min of one core; resampling only, from timing a "
+                  f"sample of blocks; backtests and packs come on top)")
         else:
             print(f"rough time: {total_seconds / 60:.1f} min of one core, divided among "
-                  f"{where}'s workers (resampling only, from timing one block)")
+                  f"{where}'s workers (resampling only, from timing a sample of blocks)")
     print(f"(checked in {time.time() - t0:.1f} s; nothing was run)")
     return batch.EXIT_STUDIES_FAILED if errors else batch.EXIT_OK
