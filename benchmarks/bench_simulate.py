@@ -192,9 +192,26 @@ def engine_rate(n, draws, workers, **kw):
     spec = _spec(n, draws, **kw).resolved()
     with threadpool_limits(1):
         run_resampling(replace(spec, draws=250))          # compile / warm caches
+        c0 = _cpu()
         t = time.perf_counter()
         run_resampling(spec, workers=workers)
-        return draws / (time.perf_counter() - t)
+        wall = time.perf_counter() - t
+        cpu = _cpu() - c0
+    _CPU_LOG[(n, workers, kw.get("draw"), kw.get("generator"))] = cpu / draws * 1e6
+    return draws / wall
+
+
+#: CPU microseconds per draw of each engine run, by (N, workers, draw, generator).
+_CPU_LOG = {}
+
+
+def _cpu():
+    """CPU seconds of this process and its reaped children (worker processes)."""
+    import resource
+
+    me = resource.getrusage(resource.RUSAGE_SELF)
+    ch = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return me.ru_utime + me.ru_stime + ch.ru_utime + ch.ru_stime
 
 
 _STARTUP = (
@@ -207,14 +224,25 @@ _STARTUP = (
 )
 
 
-def startup_times():
-    """(cold, warm) seconds for a fresh process to import and run a 125-draw study."""
+_KERNELS_ONLY = (
+    "import time; t = time.perf_counter();"
+    "import numpy as np;"
+    "from simulate import _kernels as K;"
+    "K.stationary_indices(np.zeros((2, 3), np.int64), np.zeros((2, 3), bool), 3);"
+    "K.bin_counts(np.zeros((2, 2)), 0.0, 0.1, 10, 0.0, np.zeros((2, 13), np.int64));"
+    "print(time.perf_counter() - t)"
+)
+
+
+def startup_times(code=_STARTUP):
+    """(cold, warm) seconds for a fresh process to run ``code`` with an empty, then a
+    filled, numba cache directory."""
     with tempfile.TemporaryDirectory() as cache:
         env = dict(os.environ, NUMBA_CACHE_DIR=cache)
         root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
         out = []
         for _ in range(2):
-            r = subprocess.run([sys.executable, "-c", _STARTUP], env=env, cwd=root,
+            r = subprocess.run([sys.executable, "-c", code], env=env, cwd=root,
                                capture_output=True, text=True, check=True)
             out.append(float(r.stdout.strip().splitlines()[-1]))
     return out[0], out[1]
@@ -243,7 +271,10 @@ def main(argv=None):
     if not args.no_startup:
         cold, warm = startup_times()
         print(f"start-up   cold {cold:.2f} s (empty numba cache), warm {warm:.2f} s (cached), "
-              f"import + 125-draw study in a fresh process")
+              f"import + 125-draw study in a fresh process (all packages' kernels)")
+        kc, kw = startup_times(_KERNELS_ONLY)
+        print(f"           simulate's own kernels: cold {kc:.2f} s, warm {kw:.2f} s "
+              f"(import + first call)")
     rows = []
     for n in sizes:
         d_engine = int({10: 40_000, 50: 10_000, 200: 1_000}.get(n, 2_000) * scale) or 250
@@ -258,18 +289,25 @@ def main(argv=None):
         print(f"  N={n}: done (engine {d_engine} draws, SLSQP {d_slsqp}, quadprog {d_qp})",
               flush=True)
     print()
-    head = ("N", "engine 1 core", "engine 2 workers", "2w/1w", "SLSQP loop", "quadprog loop",
-            "floor", "engine/quadprog", "engine/floor", "target 1 core", "met")
+    head = ("N", "engine 1 core", "engine 2 workers", "2w/1w", "CPU us/draw 1w / 2w",
+            "SLSQP loop", "quadprog loop", "floor", "engine/quadprog", "engine/floor",
+            "target 1 core", "met")
     print(" | ".join(head))
     print(" | ".join("---" for _ in head))
     for n, one, two, fl, sl, qp in rows:
         target = TARGETS.get(n)
-        print(" | ".join([str(n), f"{one:,.0f}", f"{two:,.0f}", f"{two / one:.2f}x", f"{sl:,.1f}",
+        c1 = _CPU_LOG.get((n, 1, "histories", None))
+        c2 = _CPU_LOG.get((n, 2, "histories", None))
+        cpu = f"{c1:.1f} / {c2:.1f}" if c1 and c2 else "-"
+        print(" | ".join([str(n), f"{one:,.0f}", f"{two:,.0f}", f"{two / one:.2f}x", cpu,
+                          f"{sl:,.1f}",
                           f"{qp:,.0f}", f"{fl:,.0f}", f"{one / qp:.2f}x", f"{one / fl:.2f}",
                           f"{target:,}" if target else "-",
                           ("yes" if one >= target else "no") if target else "-"]))
     print("(draws per second; T = 120, long-only mean-variance, sample estimates, gamma = 3;")
-    print(" the engine on the history path, draw = 'histories')")
+    print(" the engine on the history path, draw = 'histories'. CPU us/draw: CPU seconds of the")
+    print(" process and its workers per draw; equal values mean the work itself scales and any")
+    print(" shortfall of 2w/1w below 2 is cores taken by other load)")
 
     if not args.no_moments:
         print()

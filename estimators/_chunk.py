@@ -3,8 +3,8 @@
 The batched entry point cuts the ``(D, T, N)`` input into chunks of ``B`` windows (a
 memory and cache setting only: results do not depend on it) and hands each chunk to the
 mean and covariance estimators as a :class:`Chunk`. The chunk computes the column means
-up front (they also serve the finiteness check) and the demeaned windows and scatter
-matrices only when an estimator asks for them.
+and the demeaned windows up front in one pass (the means also serve the finiteness check),
+and the scatter matrices only when an estimator asks for them.
 """
 from __future__ import annotations
 
@@ -44,15 +44,15 @@ class Chunk:
         self.X = X
         self.B, self.T, self.N = X.shape
         #: (B, N) column means of each window.
-        self.mean = X.mean(axis=1)
-        self._Y = None
+        self.mean = np.empty((self.B, self.N))
+        # the demeaned windows come out of the same pass over X (one numba kernel)
+        self._Y = np.empty_like(X)
+        _kernels.center(X, self.mean, self._Y)
         self._scatter = None
 
     @property
     def Y(self):
         """(B, T, N) demeaned windows ``X - mean``."""
-        if self._Y is None:
-            self._Y = self.X - self.mean[:, None, :]
         return self._Y
 
     @property

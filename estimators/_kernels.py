@@ -42,6 +42,8 @@ __all__ = [
     "oas_intensity",
     "symmetrize_scale",
     "symmetrize_scale_numpy",
+    "center",
+    "center_numpy",
 ]
 
 
@@ -353,3 +355,33 @@ def symmetrize_scale(S, factor):  # pragma: no cover - compiled; twin tested
 def symmetrize_scale_numpy(S, factor):
     """Plain-numpy twin of :func:`symmetrize_scale`; returns a new array."""
     return (S + np.swapaxes(S, 1, 2)) * (0.5 * factor)
+
+
+# --------------------------------------------------------------------------------------
+# Column means and demeaned windows in one pass over the input
+# --------------------------------------------------------------------------------------
+@njit(cache=True)
+def center(X, mean, Y):  # pragma: no cover - compiled; twin tested
+    """``mean[b] <- X[b].mean(axis=0)`` and ``Y[b] <- X[b] - mean[b]`` for every window b.
+
+    X : (B, T, N); mean : (B, N) output; Y : (B, T, N) output.
+    """
+    B, T, N = X.shape
+    for b in range(B):
+        mb = mean[b]
+        for i in range(N):
+            mb[i] = 0.0
+        for t in range(T):
+            for i in range(N):
+                mb[i] += X[b, t, i]
+        for i in range(N):
+            mb[i] /= T
+        for t in range(T):
+            for i in range(N):
+                Y[b, t, i] = X[b, t, i] - mb[i]
+
+
+def center_numpy(X):
+    """Plain-numpy twin of :func:`center`; returns ``(mean (B, N), Y (B, T, N))``."""
+    mean = X.mean(axis=1)
+    return mean, X - mean[:, None, :]

@@ -31,7 +31,7 @@ MAX_CONDITION = 1e12
 
 #: Memory setting of the batched path: windows are processed in chunks of about this many
 #: bytes of input. It does not change any result (a test checks it).
-DEFAULT_CHUNK_BYTES = 2 * 2 ** 20
+DEFAULT_CHUNK_BYTES = 2 ** 20
 
 _SHRINK_SUGGESTION = (
     "'ledoit-wolf-constant-correlation', 'ledoit-wolf-identity' or 'oas'"

@@ -51,7 +51,7 @@ import time
 import tomllib
 import traceback
 from collections import deque
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import CancelledError, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Optional, Sequence
@@ -124,7 +124,7 @@ _BARE_KEY = re.compile(r"^[A-Za-z0-9_-]+$")
 
 
 def _toml_key(key: str) -> str:
-    return key if _BARE_KEY.match(key) else _toml_string(key)
+    return key if _BARE_KEY.fullmatch(key) else _toml_string(key)
 
 
 def _toml_string(s: str) -> str:
@@ -316,7 +316,7 @@ def _safe_value(v) -> str:
     text = re.sub(r"-{2,}", "-", re.sub(r"[^A-Za-z0-9._+=-]+", "-", _value_label(v)))
     if isinstance(v, (int, float)) and not isinstance(v, bool):
         return text
-    return text.strip("-.") or "x"
+    return text.strip("-.") or "empty"
 
 
 def _short_hash(obj) -> str:
@@ -431,6 +431,9 @@ def parse_plan(text: str, path: Path) -> Plan:
             raise SettingsError(f"{src}: [grid] \"{key}\" lists a value twice")
         _split_key(key, src)
     grid_keys = [k for k, _ in grid_items]
+    if "study" in grid_keys:
+        raise SettingsError(f"{src}: [grid] \"study\": list several base studies in the "
+                            f"top-level 'study' key instead")
     both = sorted(set(grid_keys) & {k for k, _ in fixed_items})
     if both:
         raise SettingsError(f"{src}: {', '.join(both)} in both [grid] and [set]")
@@ -461,12 +464,18 @@ def parse_plan(text: str, path: Path) -> Plan:
 
 
 def _flatten_dotted(table: dict, prefix: str = ""):
-    """Yield (dotted key, value): ``"a.b" = x`` and ``a.b = x`` (nested tables) alike.
+    """Yield (dotted key, value) pairs of a ``[grid]`` or ``[set]`` table.
 
-    A top-level key is read as a dotted path; a nested key holding a dot is quoted.
-    Tables are walked into, so a table value in ``[set]`` is merged key by key.
+    A quoted top-level key holding dots (``"backtest.cost_bps" = ...``) is a dotted path
+    whose value is taken as given, a table included. Bare dotted keys and sub-tables
+    (``backtest.cost_bps = ...``, ``[set.backtest]``) are walked into, as TOML itself
+    merges them, so a table reached that way is set key by key; a nested key holding a
+    dot (a quoted rule name) is quoted in the path.
     """
     for k, v in table.items():
+        if not prefix and "." in k:  # a quoted dotted key: the value is taken as given
+            yield k, v
+            continue
         part = (f'"{k}"' if "." in k else k) if prefix else k
         key = f"{prefix}.{part}" if prefix else part
         if isinstance(v, dict) and v:
@@ -557,10 +566,40 @@ def _file_sha256(p: Optional[Path]) -> Optional[str]:
     return h.hexdigest()
 
 
-def fingerprint(settings: StudySettings, engine_id: str = "") -> str:
-    """What a study's blocks depend on: its effective text, its data files, the code version.
+#: Packages whose code computes the blocks: their source is part of every fingerprint.
+BLOCK_CODE_PACKAGES = ("simulate", "optimise", "estimators")
 
-    Blocks written under another fingerprint are never merged into this study.
+
+def code_digest(packages: Sequence[str] = BLOCK_CODE_PACKAGES) -> str:
+    """SHA-256 of the Python sources of ``packages`` (missing packages are skipped).
+
+    Part of each study's fingerprint, so that blocks computed by other code (an upgrade,
+    a local edit) are never merged with blocks of this code.
+    """
+    import importlib.util
+
+    h = hashlib.sha256()
+    for name in packages:
+        spec = importlib.util.find_spec(name)
+        if spec is None or not spec.submodule_search_locations:
+            continue
+        for folder in spec.submodule_search_locations:
+            for p in sorted(Path(folder).rglob("*.py")):
+                h.update(str(p.relative_to(folder)).encode("utf-8"))
+                h.update(p.read_bytes())
+    return h.hexdigest()
+
+
+def engine_id(engine: "Engine") -> str:
+    """The engine's part of a fingerprint: its name and the digest of the block code."""
+    return f"{engine.ident}:{code_digest()}"
+
+
+def fingerprint(settings: StudySettings, engine_id: str = "") -> str:
+    """What a study's blocks depend on: its effective text, its data files, the code.
+
+    ``engine_id`` is :func:`engine_id` of the engine. Blocks written under another
+    fingerprint are never merged into this study.
     """
     try:
         from importlib.metadata import version
@@ -675,11 +714,12 @@ def _fsync_dir(folder: Path) -> None:
         os.close(fd)
 
 
-def atomic_write(path: Path, data: bytes) -> None:
+def atomic_write(path: Path, data: bytes, *, sync_folder: bool = True) -> None:
     """Write ``data`` to ``path`` atomically: temporary file, fsync, rename, fsync folder.
 
     A crash leaves either the old file or the new one, never a mix; a failure (disk full)
-    removes the temporary file and raises the OSError.
+    removes the temporary file and raises the OSError. ``sync_folder=False`` leaves the
+    folder's fsync to the caller (one fsync after several renames into the same folder).
     """
     path = Path(path)
     tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
@@ -695,7 +735,8 @@ def atomic_write(path: Path, data: bytes) -> None:
         except OSError:
             pass
         raise
-    _fsync_dir(path.parent)
+    if sync_folder:
+        _fsync_dir(path.parent)
 
 
 class BlockStore:
@@ -714,13 +755,21 @@ class BlockStore:
     def path(self, index: int) -> Path:
         return self.folder / f"block-{index:06d}.bin"
 
-    def write(self, index: int, payload: bytes) -> None:
-        """Write block ``index`` atomically (raises OSError on failure)."""
+    def write(self, index: int, payload: bytes, *, sync_folder: bool = True) -> None:
+        """Write block ``index`` atomically (raises OSError on failure).
+
+        ``sync_folder=False`` skips the folder's fsync (the caller syncs once after a run
+        of blocks, see :meth:`sync`).
+        """
         header = {"study": self.fingerprint, "index": int(index), "size": len(payload),
                   "sha256": hashlib.sha256(payload).hexdigest()}
         data = BLOCK_MAGIC + json.dumps(header, sort_keys=True).encode("ascii") + b"\n" + payload
         self.folder.mkdir(parents=True, exist_ok=True)
-        atomic_write(self.path(index), data)
+        atomic_write(self.path(index), data, sync_folder=sync_folder)
+
+    def sync(self) -> None:
+        """fsync the block folder (makes the renames of the blocks written so far durable)."""
+        _fsync_dir(self.folder)
 
     def read(self, index: int) -> bytes:
         """The payload of block ``index``; CorruptBlockError says what is wrong with it."""
@@ -1045,12 +1094,13 @@ def dry_run(plan: Plan, *, out: Optional[Path] = None, engine: Optional[Engine] 
     list of DryRunRow
     """
     engine = engine or default_engine()
+    ident = engine_id(engine)
     found = []
     model = None  # (seconds, work) of the first ready study
     for st in plan.studies:
         try:
             settings = study_settings(plan, st)
-            fp = fingerprint(settings, engine.ident)
+            fp = fingerprint(settings, ident)
             prepared = engine.prepare(settings)
             spec = engine.spec_of(prepared)
             blocks = list(engine.block_plan(spec)) if spec is not None else []
@@ -1289,6 +1339,7 @@ def run_batch(plan: Plan, out, *, executor=None, engine: Optional[Engine] = None
             raise _output_error(exc, out / "plan.toml") from None
 
         # Pass 1: settings, fingerprints, skip finished studies, count blocks for progress.
+        ident = engine_id(engine)
         pending: deque = deque()
         blocks_total = blocks_already = 0
         for pos, planned in enumerate(plan.studies):
@@ -1296,7 +1347,7 @@ def run_batch(plan: Plan, out, *, executor=None, engine: Optional[Engine] = None
             st.folder = out / "studies" / planned.name
             try:
                 st.settings = study_settings(plan, planned)
-                st.fp = fingerprint(st.settings, engine.ident)
+                st.fp = fingerprint(st.settings, ident)
             except NoiseproofError as exc:
                 _fail(st, exc, log, progress, outcomes)
                 continue
@@ -1324,6 +1375,7 @@ def run_batch(plan: Plan, out, *, executor=None, engine: Optional[Engine] = None
             except OSError as exc:
                 raise _output_error(exc, st.folder) from None
             _restore_parked_blocks(st.folder)
+            st.started = time.perf_counter()
             # the manifest then points at the effective study file, which stands alone
             st.settings = dataclasses.replace(st.settings, path=st.folder / "study.toml")
             st.prepared = engine.prepare(st.settings)
@@ -1428,16 +1480,20 @@ def run_batch(plan: Plan, out, *, executor=None, engine: Optional[Engine] = None
                     continue
                 except Exception as exc:
                     if is_worker_lost(exc):
-                        _worker_lost(st, idx, exc, inflight, executor, log, progress,
+                        _worker_lost(st, idx, fut, inflight, executor, log, progress,
                                      max_attempts, outcomes, active)
+                        continue
+                    if isinstance(exc, CancelledError):  # cancelled by a pool restart
+                        for i in reversed(idx):
+                            st.todo.appendleft(i)
                         continue
                     _fail(st, exc, log, progress, outcomes, tb=_remote_traceback(exc))
                     _cancel_study(st, inflight, executor)
                     active.remove(st)
                     continue
-                for i, payload in zip(idx, payloads):
-                    try:
-                        st.store.write(i, payload)
+                for k, (i, payload) in enumerate(zip(idx, payloads)):
+                    try:  # one folder fsync per task, after its last block
+                        st.store.write(i, payload, sync_folder=k == len(idx) - 1)
                     except OSError as exc:
                         raise _output_error(exc, st.store.path(i)) from None
                     st.on_disk.add(i)
@@ -1613,8 +1669,13 @@ def _cancel_study(st: _Study, inflight: dict, executor) -> None:
         st.ref = None
 
 
-def _worker_lost(st, idx, exc, inflight, executor, log, progress, max_attempts, outcomes, active):
-    """A local worker process died: restart the pool and resubmit what it held."""
+def _worker_lost(st, idx, fut, inflight, executor, log, progress, max_attempts, outcomes,
+                 active):
+    """A local worker process died: put the task's blocks back, restart the pool once.
+
+    Every task the broken pool held reports the death; each is requeued on its own report.
+    A block requeued ``max_attempts`` times fails its study (it may be what kills workers).
+    """
     for i in idx:
         st.attempts[i] = st.attempts.get(i, 0) + 1
     worst = max(st.attempts[i] for i in idx)
@@ -1626,19 +1687,12 @@ def _worker_lost(st, idx, exc, inflight, executor, log, progress, max_attempts, 
         if st in active:
             active.remove(st)
         return
-    log.write(f"study {st.name}: a worker process died during block(s) {list(idx)}; "
-              f"restarting the workers and computing it again")
+    log.write(f"study {st.name}: a worker process died while holding block(s) {list(idx)}; "
+              f"computing them again")
     progress.say(f"noiseproof: a worker process died; retrying block(s) {list(idx)} of {st.name}")
-    # Every other task of the broken pool fails too: put them all back in their queues.
-    broken = [(f, o, ix) for f, (o, ix) in list(inflight.items())]
-    for f, o, ix in broken:
-        inflight.pop(f, None)
-        o.inflight -= 1
-        for i in reversed(ix):
-            o.todo.appendleft(i)
     for i in reversed(idx):
         st.todo.appendleft(i)
-    executor.restart()
+    executor.restart(getattr(fut, "generation", None))
 
 
 def _remote_traceback(exc: BaseException) -> str:

@@ -116,7 +116,7 @@ class InlineExecutor:
             fut.set_exception(exc)
         return fut
 
-    def restart(self) -> None:
+    def restart(self, generation: Optional[int] = None) -> None:
         return None
 
     def close(self) -> None:
@@ -143,6 +143,7 @@ class ProcessExecutor:
             # modules imported once by the fork server, so each worker (and each restart
             # after a dead worker) starts without importing them again
             self._ctx.set_forkserver_preload(["__main__", *preload])
+        self.generation = 0
         self._pool = self._new_pool()
 
     def _new_pool(self) -> ProcessPoolExecutor:
@@ -159,13 +160,28 @@ class ProcessExecutor:
         return None
 
     def submit(self, fn, *args, key: str = "") -> Future:
-        return self._pool.submit(fn, *args)
+        from concurrent.futures.process import BrokenProcessPool
 
-    def restart(self) -> None:
-        """Replace a pool broken by a dead worker (its pending futures have failed)."""
+        try:
+            fut = self._pool.submit(fn, *args)
+        except BrokenProcessPool:  # a worker died since the last submission
+            self.restart(self.generation)
+            fut = self._pool.submit(fn, *args)
+        fut.generation = self.generation
+        return fut
+
+    def restart(self, generation: Optional[int] = None) -> None:
+        """Replace a pool broken by a dead worker (every future it held has failed).
+
+        ``generation`` is the pool generation of a failed future: the pool is replaced only
+        if that is still the current one (every future of a broken pool reports it).
+        """
+        if generation is not None and generation != self.generation:
+            return
         try:
             self._pool.shutdown(wait=False, cancel_futures=True)
         finally:
+            self.generation += 1
             self._pool = self._new_pool()
 
     def close(self) -> None:
@@ -223,7 +239,7 @@ class DaskExecutor:
 
             env = {name: "1" for name in _THREAD_VARIABLES}
             self._cluster = distributed.LocalCluster(
-                n_workers=n, threads_per_worker=1, processes=True, dashboard_address=None,
+                n_workers=n, threads_per_worker=1, processes=True, dashboard_address=":0",
                 silence_logs=logging.ERROR, env=env)
             self._client = distributed.Client(self._cluster)
         self._address = address
@@ -237,7 +253,9 @@ class DaskExecutor:
 
     def describe(self) -> str:
         where = f"scheduler {self._address}" if self._address else "a local cluster"
-        return f"Dask, {self._n_workers} workers / {self.slots} threads on {where}"
+        w, t = self._n_workers, self.slots
+        return (f"Dask, {w} worker{'s' if w != 1 else ''} / {t} thread{'s' if t != 1 else ''} "
+                f"on {where}")
 
     def share(self, obj, key: str = ""):
         return self._client.submit(_hold, obj, key=f"noiseproof-spec-{key}-{time.time_ns()}",
@@ -253,7 +271,7 @@ class DaskExecutor:
         return self._client.submit(fn, *args, key=f"noiseproof-{key}-{time.time_ns()}",
                                    pure=False)
 
-    def restart(self) -> None:
+    def restart(self, generation: Optional[int] = None) -> None:
         return None
 
     def close(self) -> None:

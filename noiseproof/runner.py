@@ -348,9 +348,13 @@ def _run_backtest(prepared: PreparedStudy, log: list):
 
 # --------------------------------------------------------------------------- summary
 
+_DIVISORS = {"sample": "T-1", "sample-mle": "T"}
+
+
 def _rule_summary(prepared: PreparedStudy, rs, res_rules: Optional[dict]) -> dict:
     ins = prepared.in_sample[rs.name]
-    est = {"mean": rs.mean, "covariance": rs.covariance}
+    est = {"mean": rs.mean, "covariance": rs.covariance,
+           "divisor": _DIVISORS.get(rs.covariance)}
     est.update(_moments_summary(ins["moments"]))
     if prepared.history is None:
         est["note"] = "in-sample allocation uses the capital-market assumptions as given"
@@ -642,7 +646,8 @@ def _build_pack(run_dir: Path) -> str:
     except ImportError:
         return "pack skipped: the reports package is not available in this installation"
     res = build_pack(run_dir)
-    return f"pack written: {getattr(res, 'html', 'pack/')}"
+    names = [Path(p).name for p in (getattr(res, "html", None), getattr(res, "pdf", None)) if p]
+    return f"pack written: {', '.join('pack/' + n for n in names) or 'pack/'}"
 
 
 def _move_into_place(tmp: Path, out: Path) -> None:

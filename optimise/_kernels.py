@@ -139,6 +139,25 @@ def _eqp(H, c, A, lo, hi, x, vs, rs, hscale, delta, xk, idx, ridx, L, V, S, LS, 
         for a in range(nf):
             xs[a] = u[a]
         return nf, nr, 0
+    # linear dependence of the working rows on the free variables, in the Euclidean
+    # metric: Cholesky of the Gram matrix A_RF A_RF' (pivot / diagonal = squared sine of
+    # the angle between a row and the earlier ones)
+    for r in range(nr):
+        kr = ridx[r]
+        for q in range(r + 1):
+            kq = ridx[q]
+            s = 0.0
+            for a in range(nf):
+                s += A[kr, idx[a]] * A[kq, idx[a]]
+            diag = s
+            for k2 in range(q):
+                s -= LS[r, k2] * LS[q, k2]
+            if r == q:
+                if s <= 1e-20 * diag or s <= 1e-300:
+                    return nf, nr, kr + 1
+                LS[r, r] = math.sqrt(s)
+            else:
+                LS[r, q] = s / LS[q, q]
     # V = H_FF^-1 A_RF',  S = A_RF V,  t = A_RF u - (b_R - A_RB x_B)
     amax = 0.0
     for r in range(nr):
@@ -165,16 +184,17 @@ def _eqp(H, c, A, lo, hi, x, vs, rs, hscale, delta, xk, idx, ridx, L, V, S, LS, 
         for a in range(nf):
             s += A[k, idx[a]] * u[a]
         t[r] = s
-    # Cholesky of S with a dependency check row by row: the pivot over S[r, r] is the
-    # squared sine of the angle between row r and the earlier rows (in the H^-1 metric)
+    # Cholesky of S (positive definite for independent rows; a vanishing pivot here comes
+    # from an ill-conditioned H_FF: handled as a singular factor, i.e. by the
+    # proximal-point method)
     for r in range(nr):
         for q in range(r + 1):
             s = S[r, q]
             for k2 in range(q):
                 s -= LS[r, k2] * LS[q, k2]
             if r == q:
-                if s <= 1e-12 * S[r, r] or s <= 1e-300:
-                    return nf, nr, ridx[r] + 1
+                if s <= 1e-15 * S[r, r] or s <= 1e-300:
+                    return nf, nr, -1
                 LS[r, r] = math.sqrt(s)
             else:
                 LS[r, q] = s / LS[q, q]
@@ -317,6 +337,8 @@ def qp_solve(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i)
         st, it2 = _qp_core(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f,
                            work_i, delta, xk)
         it += it2
+        if st == FACTOR_SINGULAR:
+            return SINGULAR, it
         if st != OK:
             return st, it
         move = 0.0
@@ -426,9 +448,15 @@ def _qp_core(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i,
                     bkind = 1
         if alpha < 0.0:
             alpha = 0.0
-        for a in range(nf):
-            i = idx[a]
-            x[i] = x[i] + alpha * (xs[a] - x[i])
+        if alpha == 1.0:
+            # a full step lands exactly on the subproblem minimiser, so the answer depends
+            # only on the final working set, not on the path (warm or cold start)
+            for a in range(nf):
+                x[idx[a]] = xs[a]
+        else:
+            for a in range(nf):
+                i = idx[a]
+                x[i] = x[i] + alpha * (xs[a] - x[i])
         if block >= 0:
             if block < n:
                 vs[block] = bkind
@@ -706,7 +734,7 @@ def target_vol_batch(S, mu, A, lo, hi, lb, ub, x0, xmax, var_target, maxiter,
         for j in range(n):
             if abs(mu[d, j]) > mmax:
                 mmax = abs(mu[d, j])
-        tb = v0 / max(mmax, 1e-300)
+        tb = max(v0, var_target) / max(mmax, 1e-300)   # t ~ variance / mean scale
         found = False
         for _ in range(200):
             for j in range(n):

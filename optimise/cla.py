@@ -29,7 +29,7 @@ import numpy as np
 
 from estimators.core import SettingsError, SingularCovarianceError
 
-from .constraints import Constraints
+from .constraints import Constraints, _greedy_fill
 from .rules import _SHRINK_HINT, _run_qp
 
 __all__ = ["Frontier", "efficient_frontier"]
@@ -91,7 +91,10 @@ class Frontier:
         m = self.means[::-1]           # increasing
         W = self.weights[::-1]
         k = np.clip(np.searchsorted(m, t, side="right") - 1, 0, len(m) - 2)
-        frac = (t - m[k]) / (m[k + 1] - m[k])
+        dm = m[k + 1] - m[k]
+        # equal means on consecutive turning points (a singular covariance) are a jump in
+        # the weights at one mean: both sides are optimal, take the lower one
+        frac = np.where(dm > 0, (t - m[k]) / np.where(dm > 0, dm, 1.0), 0.0)
         frac = np.clip(frac, 0.0, 1.0)
         return W[k] + frac[:, None] * (W[k + 1] - W[k])
 
@@ -136,8 +139,10 @@ def efficient_frontier(mean, covariance, constraints: Constraints) -> Frontier:
     n = mu.size
     # minimum-variance portfolio and its partition from the active-set solver
     A, lo, hi = constraints.rows()
+    # start at the vertex that fills the lowest-variance assets first (few iterations)
+    x0 = _greedy_fill(-0.5 * np.diag(S)[None, :], lower, upper)
     X, Z, NU, status = _run_qp(S[None], np.zeros((1, n)), A[None], lo[None], hi[None],
-                               lower, upper, constraints.feasible_point[None].copy())
+                               lower, upper, x0)
     if status[0] != 0:
         raise SingularCovarianceError("the minimum-variance portfolio is not unique (singular "
                                       "covariance); " + _SHRINK_HINT)
@@ -146,16 +151,46 @@ def efficient_frontier(mean, covariance, constraints: Constraints) -> Frontier:
     state = np.zeros(n, dtype=int)          # 0 free, -1 lower, +1 upper
     state[np.abs(w - lower) <= tol_b] = -1
     state[(np.abs(w - upper) <= tol_b) & (state == 0)] = 1
-    if not np.any(state == 0):              # a vertex: free the asset with the largest mean
-        state[int(np.argmax(mu))] = 0       # among those that may move (kept at its bound)
+    if not np.any(state == 0):
+        # a vertex: one asset must carry the budget row. At lambda = 0 its gradient fixes
+        # gamma = -(Sigma w)_k, which must lie between the upper-bounded assets' largest
+        # and the lower-bounded assets' smallest (Sigma w)_j; take it from that end.
+        sw = S @ w
+        ups = np.flatnonzero(state > 0)
+        lows = np.flatnonzero(state < 0)
+        if ups.size and (not lows.size or sw[ups].max() <= sw[lows].min() + 1e-15):
+            state[ups[int(np.argmax(sw[ups]))]] = 0
+        else:
+            state[lows[int(np.argmin(sw[lows]))]] = 0
     w[state < 0] = lower[state < 0]
     w[state > 0] = upper[state > 0]
     lam = 0.0
     lams = [0.0]
     corners = [w.copy()]
     last_moved = -1
+    null_moves = 0
     for _ in range(20 * n + 100):
-        a, b, g0, g1 = _solve_partition(S, mu, state, lower, upper)
+        part = _solve_partition(S, mu, state, lower, upper)
+        if isinstance(part, _NullDirection):
+            # the free block is singular on the budget hyperplane: along d the variance is
+            # flat (and, at an optimum with lambda > 0, so is the mean), so every point on
+            # the line is optimal at this lambda. Move to the first bound, preferring the
+            # higher mean, and continue with the smaller free set.
+            null_moves += 1
+            if null_moves > 4 * n:
+                raise SingularCovarianceError(
+                    "critical line algorithm: the covariance of the free assets is singular "
+                    "and the path does not resolve; " + _SHRINK_HINT)
+            w, hit, side = _move_along(w, part.d, mu, state, lower, upper)
+            state[hit] = side
+            last_moved = hit
+            if lam == 0.0:
+                corners[-1] = w.copy()      # the least-variance end with the higher mean
+            else:
+                lams.append(lam)            # same lambda, same mean and variance
+                corners.append(w.copy())
+            continue
+        a, b, g0, g1 = part
         F = np.flatnonzero(state == 0)
         wa = np.where(state < 0, lower, np.where(state > 0, upper, 0.0))
         wb = np.zeros(n)
@@ -170,6 +205,8 @@ def efficient_frontier(mean, covariance, constraints: Constraints) -> Frontier:
         eps = 1e-12 * max(1.0, lam)
         btol = 1e-12 * max(1.0, float(np.max(np.abs(wb))))
         qtol = 1e-12 * (float(np.max(np.abs(mu))) + float(np.max(np.abs(S @ wb))) + abs(g1))
+        # gradient tolerance for "already on the wrong side" (sign: + state means wrong)
+        ptol = 1e-11 * (float(np.max(np.abs(S @ wa))) + abs(g0) + lam * float(np.max(np.abs(mu))))
         for j in range(n):
             if state[j] == 0:
                 bj = wb[j]
@@ -178,7 +215,10 @@ def efficient_frontier(mean, covariance, constraints: Constraints) -> Frontier:
                 ev = ((upper[j] if bj > 0 else lower[j]) - wa[j]) / bj
                 kind_j = 1 if bj > 0 else -1
             else:
-                if state[j] < 0 and q[j] < -qtol:
+                gj = p[j] + lam * q[j]
+                if j != last_moved and (gj * state[j] > ptol):
+                    ev = lam          # already on the wrong side: it leaves its bound now
+                elif state[j] < 0 and q[j] < -qtol:
                     ev = -p[j] / q[j]
                 elif state[j] > 0 and q[j] > qtol:
                     ev = -p[j] / q[j]
@@ -227,8 +267,43 @@ def efficient_frontier(mean, covariance, constraints: Constraints) -> Frontier:
     return Frontier(lams, W, means, variances, constraints.assets)
 
 
+class _NullDirection:
+    """A direction d (N,) on the free assets with 1'd = 0 and Sigma_FF d = -c 1 (so
+    d'Sigma d = 0): the bordered system of the partition is singular."""
+
+    def __init__(self, d):
+        self.d = d
+
+
+def _move_along(w, d, mu, state, lower, upper):
+    """Move from w along +/- d (the sign with the higher mean, or, on a tie, the shorter
+    step) to the first bound of a free asset. Returns (w, asset, side)."""
+    free = state == 0
+    options = []
+    for sign in (1.0, -1.0):
+        step = sign * d
+        t = np.inf
+        hit, side = -1, 0
+        for j in np.flatnonzero(free & (np.abs(step) > 1e-14 * np.max(np.abs(d)))):
+            tj = ((upper[j] if step[j] > 0 else lower[j]) - w[j]) / step[j]
+            if tj < t:
+                t, hit, side = max(tj, 0.0), j, (1 if step[j] > 0 else -1)
+        if hit >= 0:
+            options.append((-(mu @ step) * t, t, hit, side, step))
+    if not options:
+        raise SingularCovarianceError("critical line algorithm: a singular direction of the "
+                                      "covariance meets no bound; " + _SHRINK_HINT)
+    mean_loss = min(o[0] for o in options)
+    tied = [o for o in options if o[0] <= mean_loss + 1e-15]
+    _, t, hit, side, step = min(tied, key=lambda o: o[1])
+    w = w + t * step
+    w[hit] = upper[hit] if side > 0 else lower[hit]
+    return w, hit, side
+
+
 def _solve_partition(S, mu, state, lower, upper):
-    """Free weights a + lambda b and gamma g0 + lambda g1 for a fixed partition."""
+    """Free weights a + lambda b and gamma g0 + lambda g1 for a fixed partition, or a
+    :class:`_NullDirection` when the bordered system is singular."""
     F = np.flatnonzero(state == 0)
     B = np.flatnonzero(state != 0)
     wB = np.where(state[B] < 0, lower[B], upper[B])
@@ -241,12 +316,14 @@ def _solve_partition(S, mu, state, lower, upper):
     rhs[:k, 0] = -S[np.ix_(F, B)] @ wB
     rhs[k, 0] = 1.0 - wB.sum()
     rhs[:k, 1] = mu[F]
-    cond = np.linalg.cond(M)
-    if not np.isfinite(cond) or cond > _COND_LIMIT:
-        raise SingularCovarianceError(
-            "critical line algorithm: the covariance of the free assets "
-            f"({', '.join(str(i) for i in F)}) is singular or ill-conditioned "
-            f"(condition number {cond:.3g}); " + _SHRINK_HINT)
+    sv = np.linalg.svd(M, compute_uv=False)
+    if not sv[-1] > sv[0] / _COND_LIMIT:
+        _, _, vt = np.linalg.svd(M)
+        d = np.zeros(state.size)
+        d[F] = vt[-1, :k]
+        if not np.any(d):
+            raise SingularCovarianceError("critical line algorithm: singular system; " + _SHRINK_HINT)
+        return _NullDirection(d / np.max(np.abs(d)))
     sol = np.linalg.solve(M, rhs)
     return sol[:k, 0], sol[:k, 1], sol[k, 0], sol[k, 1]
 

@@ -130,12 +130,13 @@ class Constraints:
         return _lp_max(self, mean)
 
 
-def _greedy_fill(means, lower, upper):
-    """Maximum-return fully-invested portfolios under box bounds, one per row of ``means``.
+def _greedy_fill(means, lower, upper, positive_only=False):
+    """Maximum-return portfolios under box bounds, one per row of ``means``.
 
     Start every weight at its lower bound and raise weights to their upper bound in order
     of decreasing mean until the budget is used (the standard start of the critical line
-    algorithm, Markowitz 1956).
+    algorithm, Markowitz 1956). With ``positive_only`` (a cash sleeve, ``sum(w) <= 1``)
+    only assets with a positive mean are raised; the rest stays in cash.
     """
     D, n = means.shape
     order = np.argsort(-means, axis=1, kind="stable")
@@ -146,6 +147,8 @@ def _greedy_fill(means, lower, upper):
         j = order[:, r]
         room = cap[j] - lower[j]
         add = np.clip(np.minimum(room, left), 0.0, None)
+        if positive_only:
+            add = np.where(means[np.arange(D), j] > 0, add, 0.0)
         W[np.arange(D), j] += add
         left = left - add
     return W

@@ -58,13 +58,13 @@ _SHRINK_HINT = ("use a shrinkage covariance estimator (e.g. 'ledoit-wolf-identit
 _COMMON = ("long_only", "budget", "bounds", "groups")
 RULE_PARAMS = {
     "equal-weight": (),
-    "inverse-volatility": (),
-    "equal-risk-contribution": (),
     "min-variance": _COMMON,
     "mean-variance": _COMMON + ("risk_aversion", "risk_free"),
     "max-sharpe": _COMMON + ("risk_free",),
     "target-return": _COMMON + ("target", "risk_free"),
     "target-volatility": _COMMON + ("target", "risk_free"),
+    "inverse-volatility": (),
+    "equal-risk-contribution": (),
 }
 RULE_TYPES = tuple(RULE_PARAMS)
 _QP_TYPES = ("min-variance", "mean-variance", "max-sharpe", "target-return")
@@ -82,7 +82,9 @@ class Allocation:
         ``1 - sum(weights)`` with ``budget = "cash"``, else 0.
     rule_type : str
     kkt : float or None
-        Largest KKT residual of the solve (None for the closed-form heuristics).
+        Largest KKT residual of the solve, scaled by ``max(1, |c|, |Hx|)`` (for
+        ``equal-risk-contribution``: the relative spread of the risk contributions; None
+        for ``equal-weight`` and ``inverse-volatility``).
     implied_risk_aversion : float or None
         For ``target-volatility``: the risk aversion of the mean-variance problem with the
         same solution (inf when the volatility limit does not bind).
@@ -396,7 +398,6 @@ class Rule:
                 raise InfeasibleError(
                     f"rule '{self.name}': target return {self.target:.6g} is above the largest "
                     f"attainable expected return {top:.6g}{where} under the constraints")
-            # start on the target row when the max is only just reached
             return W
         if self.type == "max-sharpe":
             vals, W = self._max_returns(means - self.risk_free)
@@ -432,8 +433,10 @@ class Rule:
         """
         cons = self.constraints
         if cons.bounded:
-            if not cons.group_names and cons.budget == "full":
-                W = _greedy_fill(means, cons.lower, cons.upper)
+            if not cons.group_names and np.all(np.isfinite(cons.lower)):
+                # full budget: fill to 1; cash (long-only, no borrowing): only assets with a
+                # positive (excess) mean, the rest stays in cash
+                W = _greedy_fill(means, cons.lower, cons.upper, cons.budget == "cash")
                 return np.einsum("dn,dn->d", means, W), W
             out = [cons.max_return(m) for m in means]
             return np.array([v for v, _ in out]), np.array([w for _, w in out])

@@ -121,7 +121,7 @@ class Verdict:
     settings: dict
     sources: dict
     criteria: tuple      # of Criterion
-    groups: tuple        # ((title, status, reason), ...) one per stated criterion
+    groups: tuple        # ((title, status, reason, finding), ...) one per stated criterion
     answer: str
     status: str          # "pass" | "fail" | "open"
 

@@ -330,12 +330,17 @@ def draw_path(spec: ResampleSpec, length: int, *, strict: bool = True):
         from estimators import needs_observations
     except ImportError:  # pragma: no cover - estimators not installed
         needs_observations = None
+    needing = {}
     for rs in spec.rules:
         if not _uses_inputs(rs):
             continue
         if needs_observations is None or needs_observations(rs.mean, rs.covariance):
-            reasons.append(f"rule '{rs.name}' uses the estimators '{rs.mean}' / "
-                           f"'{rs.covariance}', which need the observations themselves")
+            needing.setdefault((rs.mean, rs.covariance), []).append(rs.name)
+    for (mean, cov), names in needing.items():
+        who = f"rule '{names[0]}'" if len(names) == 1 else \
+            "rules " + ", ".join(f"'{x}'" for x in names)
+        reasons.append(f"{who} use{'s' if len(names) == 1 else ''} the estimators '{mean}' / "
+                       f"'{cov}', which need the observations themselves")
     singular = length - 1 < spec.n_assets
     if singular:
         reasons.append(f"T - 1 = {length - 1} is below N = {spec.n_assets} (the scatter "
@@ -1092,14 +1097,17 @@ def merge_blocks(spec: ResampleSpec, results: Iterable[BlockResult]) -> "Resampl
     return m.finish()
 
 
-def _run_block_worker(spec, index):  # pragma: no cover - runs in worker processes
+def _worker_init():  # pragma: no cover - runs in worker processes
+    """One BLAS thread per worker process (the workers are the parallelism)."""
     try:
         from threadpoolctl import threadpool_limits
-
-        with threadpool_limits(1):
-            return run_block(spec, index)
     except ImportError:
-        return run_block(spec, index)
+        return
+    threadpool_limits(1)
+
+
+def _run_block_worker(spec, index):  # pragma: no cover - runs in worker processes
+    return run_block(spec, index)
 
 
 def run_resampling(spec: ResampleSpec, *, workers: int = 1,
@@ -1136,7 +1144,8 @@ def run_resampling(spec: ResampleSpec, *, workers: int = 1,
     done = {}
     nxt = 0
     window = 3 * workers
-    with cf.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
+    with cf.ProcessPoolExecutor(max_workers=workers, mp_context=ctx,
+                                initializer=_worker_init) as pool:
         it = iter(plan)
         for b in it:
             pending[pool.submit(_run_block_worker, spec, b.index)] = b
@@ -1248,8 +1257,15 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
                           "max": float(wmax[i, j])})
             weights[a] = entry
             band_rows.append({"rule": rs.name, "asset": a, **entry})
-        opt = rs.rule.weights(mu, cov)
-        opt_w = np.asarray(getattr(opt, "weights", opt), dtype=np.float64)
+        opt_note = None
+        try:
+            opt = rs.rule.weights(mu, cov)
+            opt_w = np.asarray(getattr(opt, "weights", opt), dtype=np.float64)
+        except NoiseproofError as exc:
+            # e.g. max-sharpe when no portfolio has a positive population mean: the rule has
+            # no optimum; its losses against it are then undefined (NaN -> null)
+            opt_note = " ".join(str(exc).split())
+            opt_w = np.full(ctx.n, np.nan)
         opt_m = score(opt_w[None], mu, cov, gamma)[0]
         avg_m = score(w_mean[i][None], mu, cov, gamma)[0]
         pop = {}
@@ -1282,6 +1298,8 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
         pop["ceq_loss_vs_optimum_annualised"] = pop["ceq_loss_vs_optimum"] * ppy
         optimum = {"weights": dict(zip(assets, map(float, opt_w))),
                    "cash": float(1.0 - opt_w.sum()), **_metric_dict(opt_m, ppy)}
+        if opt_note is not None:
+            optimum["note"] = f"the rule has no allocation under the population: {opt_note}"
         resampled = {"weights": dict(zip(assets, map(float, w_mean[i]))),
                      "cash": float(c_mean[i]), **_metric_dict(avg_m, ppy)}
         entry = {"weights": weights, "cash": {"mean": float(c_mean[i]), "sd": float(c_sd[i])},
@@ -1454,6 +1472,7 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
         "generator": gen, "draws": spec.draws, "length": spec.length, "T": spec.length,
         "seed": spec.seed, "n_assets": ctx.n, "assets": assets,
         "draw_path": draw_path(spec, spec.length)[0], "draw_setting": spec.draw,
+        "draw": (f"{draw_path(spec, spec.length)[0]} (setting '{spec.draw}')"),
         "draw_path_reason": draw_path(spec, spec.length)[1],
         "chunk_draws": CHUNK_DRAWS, "block_draws": spec.block_draws,
         "risk_aversion": gamma, "hold_threshold": spec.hold_threshold,

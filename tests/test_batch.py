@@ -609,7 +609,7 @@ def test_engine_checksum_is_checked_too(plan_dir, tmp_path):
     first = json.loads((folder / "summary.json").read_text())["resample"]
     (folder / "batch.json").unlink()
     store = BlockStore(folder / "blocks", batch.fingerprint(study_settings(plan, plan.studies[0]),
-                                                            "stand-in"))
+                                                            batch.engine_id(STANDIN)))
     store.write(0, store.read(0)[:-8])          # re-wrapped correctly, payload short by a draw
     res = run_batch(plan, out, engine=STANDIN, quiet=True, resume=True)
     assert res.studies[0].rejected == 1
@@ -637,11 +637,11 @@ def test_disk_full_mid_run_stops_cleanly_and_resume_finishes(plan_dir, tmp_path,
     real = BlockStore.write
     calls = {"n": 0}
 
-    def write(self, i, payload):
+    def write(self, i, payload, **kw):
         calls["n"] += 1
         if calls["n"] == 9:
             raise OSError(errno.ENOSPC, "No space left on device")
-        return real(self, i, payload)
+        return real(self, i, payload, **kw)
     monkeypatch.setattr(BlockStore, "write", write)
     with pytest.raises(BatchOutputError, match="No space left on device; finished blocks are intact"):
         run_batch(plan, out, engine=STANDIN, quiet=True)
@@ -677,7 +677,7 @@ def test_real_disk_full_on_a_tiny_file_system(plan_dir, tmp_path):
         for b in blocks:
             st = b.parent.parent.name
             s = next(p for p in plan.studies if p.name == st)
-            fp.setdefault(st, batch.fingerprint(study_settings(plan, s), "stand-in"))
+            fp.setdefault(st, batch.fingerprint(study_settings(plan, s), batch.engine_id(STANDIN)))
             standin_from_bytes(BlockStore(b.parent, fp[st]).read(int(b.stem.split("-")[1])))
         assert not list(out.glob("studies/*/blocks/.block-*"))       # no temporaries left
     finally:
@@ -797,3 +797,24 @@ def test_sigkill_mid_run_then_resume_gives_the_uninterrupted_numbers(plan_dir, t
     assert f"took over a stale lock left by PID {proc.pid}" in r.stderr
     assert "4 studies: 4 done" in r.stdout
     assert _summaries(out) == _summaries(tmp_path / "clean")
+
+
+def test_dask_options_without_the_extra_are_one_clear_line(plan_dir, capsys, monkeypatch):
+    monkeypatch.setitem(sys.modules, "distributed", None)      # as if not installed
+    rc = main(["batch", str(plan_dir / "plan.toml"), "--dask-local", "2"])
+    err = capsys.readouterr().err
+    assert rc == 2 and "needs the 'dask' extra: pip install 'noiseproof[dask]'" in err
+    assert len(err.strip().splitlines()) == 1
+
+
+def test_set_assigns_quoted_keys_as_given_and_merges_sub_tables(plan_dir):
+    plan = _plan(plan_dir, 'study = "study.toml"\n[set]\n"backtest.cost_bps" = {A = 10, B = 5}\n'
+                 '[set.resample]\ndraws = 30\n')
+    s = study_settings(plan, plan.studies[0])
+    assert s.backtest.cost_bps == {"A": 10, "B": 5} and s.resample.draws == 30
+    assert s.resample.length == 24                      # merged, not replaced
+    plan = _plan(plan_dir, 'study = "study.toml"\n[grid]\nresample.draws = [10, 20]\n'
+                 '"rules.proposed.bounds" = [{}, {A = [0.0, 0.5]}]\n')
+    assert [s.name for s in plan.studies] == ["draws=10__bounds=empty", "draws=10__bounds=A-0.0-0.5",
+                                             "draws=20__bounds=empty", "draws=20__bounds=A-0.0-0.5"]
+    assert study_settings(plan, plan.studies[1]).rules[0].params["bounds"] == {"A": [0.0, 0.5]}

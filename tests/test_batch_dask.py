@@ -25,7 +25,7 @@ def cluster():
     import logging
 
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                  dashboard_address=None, silence_logs=logging.ERROR) as c:
+                                  dashboard_address=":0", silence_logs=logging.ERROR) as c:
         with distributed.Client(c) as client:
             yield c, client
 
@@ -100,3 +100,14 @@ def test_real_engine_on_dask_matches_single_runs_even_when_a_worker_dies(referen
     assert marker.exists()
     assert numbers(tmp_path / "dask-death") == expected
     client.wait_for_workers(2, timeout=30)
+
+
+def test_cli_dask_local_starts_and_stops_its_own_cluster(plan_dir, tmp_path, capsys, monkeypatch):
+    monkeypatch.setenv("NOISEPROOF_BATCH_ENGINE", "test_batch:STANDIN")
+    rc = main(["batch", str(plan_dir / "plan.toml"), "--out", str(tmp_path / "out"),
+               "--dask-local", "1", "--no-pack"])
+    out = capsys.readouterr().out
+    assert rc == 0 and "Dask, 1 worker / 1 thread on a local cluster" in out
+    run_batch(batch.load_plan(plan_dir / "plan.toml"), tmp_path / "one", engine=STANDIN,
+              quiet=True)
+    assert _summaries(tmp_path / "out") == _summaries(tmp_path / "one")

@@ -205,6 +205,7 @@ def dying_run_block(marker: str, die_index: int, spec, index):
     return simulate.run_block(spec, index)
 
 
+@pytest.mark.slow   # the stand-in local case and the real-engine Dask case run in the suite
 def test_local_worker_killed_mid_block_with_the_real_engine(reference, tmp_path):
     import dataclasses
     import functools

@@ -73,7 +73,7 @@ def quadprog_target(mu, S, lo, hi, m):
     return quadprog.solve_qp(S, np.zeros(n), C, b, 2)[0]
 
 
-@pytest.mark.parametrize("seed", range(6))
+@pytest.mark.parametrize("seed", range(8))
 def test_frontier_equals_independent_solves(seed):
     # Every point between turning points (by linear interpolation) equals an independent
     # quadprog solve (quadprog 0.1.14, dense Goldfarb-Idnani) at the same expected return,
@@ -87,11 +87,14 @@ def test_frontier_equals_independent_solves(seed):
     S = C * np.outer(vol, vol)
     mu = rng.uniform(0.02, 0.12, n)
     lo = np.where(rng.random(n) < 0.3, 0.02, 0.0)
+    if seed >= 4:                          # box bounds that allow short positions
+        lo = np.where(rng.random(n) < 0.5, -0.2, 0.0)
     hi = np.where(rng.random(n) < 0.5, rng.uniform(0.2, 0.6, n), 1.0)
     if hi.sum() < 1:
         hi[:] = 1.0
     assets = tuple(f"x{i}" for i in range(n))
-    cons = make_constraints(assets, bounds={a: (lo[i], hi[i]) for i, a in enumerate(assets)})
+    cons = make_constraints(assets, long_only=bool(np.all(lo >= 0)),
+                            bounds={a: (lo[i], hi[i]) for i, a in enumerate(assets)})
     f = efficient_frontier(mu, S, cons)
     assert np.all(np.diff(f.means) < 0) and np.all(np.diff(f.lambdas) < 0)
     # interior targets (at the very top the equality mu'w = max is degenerate for quadprog)
@@ -161,8 +164,10 @@ def test_perfectly_correlated_pair_singular_covariance():
     np.testing.assert_allclose(x, np.linspace(0, 1, 6), atol=1e-12)
 
 
-def test_singular_free_block_is_an_error_not_garbage():
-    # Two identical assets: the frontier's weights between them are not determined.
+def test_duplicated_asset_singular_covariance():
+    # Two identical assets: the split between them is not determined, but the frontier is.
+    # The result must be an optimal frontier (the pair's summed weight equals the 4-asset
+    # frontier of REFERENCES section 14) or a SingularCovarianceError; never garbage.
     mu, S = recipe_b()
     S5 = np.zeros((5, 5))
     S5[:4, :4] = S
@@ -170,8 +175,16 @@ def test_singular_free_block_is_an_error_not_garbage():
     S5[:4, 4] = S[3]
     S5[4, 4] = S[3, 3]
     mu5 = np.r_[mu, mu[3]]
-    with pytest.raises(SingularCovarianceError, match="shrinkage"):
-        efficient_frontier(mu5, S5, make_constraints(5))
+    try:
+        f5 = efficient_frontier(mu5, S5, make_constraints(5))
+    except SingularCovarianceError as exc:
+        assert "shrinkage" in str(exc)
+        return
+    f4 = efficient_frontier(mu, S, make_constraints(ASSETS4))
+    targets = np.linspace(f4.means[-1], f4.means[0], 9)
+    W5 = f5.at_returns(targets)
+    merged = np.c_[W5[:, :3], W5[:, 3] + W5[:, 4]]
+    np.testing.assert_allclose(merged, f4.at_returns(targets), atol=1e-10)
 
 
 def test_unsupported_constraints():
@@ -180,3 +193,43 @@ def test_unsupported_constraints():
         efficient_frontier(mu, S, make_constraints(ASSETS4, budget="cash"))
     with pytest.raises(SettingsError, match="bounded"):
         efficient_frontier(mu, S, make_constraints(ASSETS4, long_only=False))
+
+
+def _singular_sweep(count, seed):
+    from optimise import make_rule
+
+    rng = np.random.default_rng(seed)
+    solved = 0
+    for _ in range(count):
+        n = int(rng.integers(3, 10))
+        T = int(rng.integers(2, n + 1))              # T <= N: singular sample covariance
+        S = np.cov(rng.normal(0.005, 0.04, (T, n)), rowvar=False)
+        mu = rng.normal(0.005, 0.003, n)
+        if rng.random() < 0.3:
+            mu[1] = mu[0]                            # a tie in the means
+        lo = 0.0 if rng.random() < 0.5 else -0.2
+        bounds = {f"asset {i + 1}": (lo, 0.5) for i in range(n)}
+        cons = make_constraints(n, long_only=lo == 0, bounds=bounds)
+        try:
+            f = efficient_frontier(mu, S, cons)
+        except SingularCovarianceError as exc:      # allowed: an error naming the cure
+            assert "shrinkage" in str(exc)
+            continue
+        solved += 1
+        for w in f.points(9)[:-1]:
+            # as good as the active-set solver's target-return portfolio at that mean
+            r = make_rule("t", "target-return", {"target": float(w @ mu), "long_only": lo == 0,
+                                                 "bounds": bounds}, n)
+            v = r.weights(mu, S).weights
+            assert w @ S @ w <= v @ S @ v + 1e-9 * (v @ S @ v) + 1e-15
+            assert cons.is_feasible(w, tol=1e-12)
+    return solved
+
+
+def test_singular_covariance_frontier_is_optimal_or_refused():
+    assert _singular_sweep(40, 1) > 10
+
+
+@pytest.mark.slow
+def test_singular_covariance_frontier_is_optimal_or_refused_full():
+    assert _singular_sweep(600, 2) > 200

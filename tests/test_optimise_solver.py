@@ -183,7 +183,7 @@ def test_batch_equals_loop(type_, params):
     r = make_rule("r", type_, params, n)
     W = r.weights_batch(means, covs)
     loop = np.array([r.weights(means[d], covs[d]).weights for d in range(D)])
-    np.testing.assert_allclose(W, loop, atol=1e-12)
+    np.testing.assert_array_equal(W, loop)     # not a digit changes (block-size invariance)
     if type_ not in ("equal-risk-contribution",):
         for d in range(0, D, 7):
             assert r.check(means[d], covs[d], W[d]).max < 1e-9
@@ -200,11 +200,17 @@ def test_warm_start_does_not_change_results():
     Xw, Zw, Nw, sw = _run_qp(H, c, A, lo, hi, lb, ub, x0, warm=True)
     Xc, Zc, Nc, sc = _run_qp(H, c, A, lo, hi, lb, ub, x0, warm=False)
     assert np.all(sw == 0) and np.all(sc == 0)
-    np.testing.assert_allclose(Xw, Xc, atol=1e-12)
+    # the answer depends only on the final working set: identical to the last bit
+    np.testing.assert_array_equal(Xw, Xc)
     assert np.max(_kkt_batch(H, c, A, lo, hi, lb, ub, Xw, Zw, Nw)) < 1e-10
     # reversing the order of the problems changes nothing either
     Xr, *_ = _run_qp(H[::-1], c[::-1], A, lo, hi, lb, ub, x0, warm=True)
-    np.testing.assert_allclose(Xr[::-1], Xw, atol=1e-12)
+    np.testing.assert_array_equal(Xr[::-1], Xw)
+    # and so does splitting the batch into blocks of any size
+    for size in (1, 7, 64):
+        parts = [_run_qp(H[i:i + size], c[i:i + size], A[i:i + size], lo[i:i + size],
+                         hi[i:i + size], lb, ub, x0[i:i + size])[0] for i in range(0, D, size)]
+        np.testing.assert_array_equal(np.concatenate(parts), Xw)
 
 
 def test_numba_kernels_match_plain_python_twin():
@@ -392,3 +398,39 @@ def test_plain_twin_on_a_singular_problem():
     assert outs[0][3][0] == 0 and outs[0][4][0] > 3
     for a, b in zip(outs[0], outs[1]):
         np.testing.assert_allclose(a, b, rtol=1e-10, atol=1e-14)
+
+
+@settings(max_examples=12, deadline=None)
+@given(seed=st.integers(0, 2 ** 32 - 1), n=st.integers(2, 7))
+def test_random_target_volatility_matches_cvxpy(seed, n):
+    # Reference: max mu'w s.t. w'Sw <= target^2 written in cvxpy 1.9 (CLARABEL).
+    from estimators.core import InfeasibleError
+
+    rng = np.random.default_rng(seed)
+    assets = tuple(f"x{i}" for i in range(n))
+    params = random_constraints(rng, assets, True)
+    means, covs = draws(rng, 1, n, T=60)
+    mu, S = means[0], covs[0]
+    try:
+        base = make_rule("m", "min-variance", params, assets)
+    except InfeasibleError:
+        return
+    wmin = base.weights(mu, S).weights
+    _, wmax = base.constraints.max_return(mu)
+    lo, hi = np.sqrt(wmin @ S @ wmin), np.sqrt(wmax @ S @ wmax)
+    target = float(lo + rng.uniform(0.05, 0.95) * (hi - lo)) if hi > lo * (1 + 1e-6) else hi
+    r = make_rule("t", "target-volatility", dict(params, target=target), assets)
+    w = r.weights(mu, S).weights
+    assert np.sqrt(w @ S @ w) <= target * (1 + 1e-12)
+    assert r.check(mu, S, w).max < 1e-9
+    x = cp.Variable(n)
+    cons = [cp.sum(x) == 1, x >= r.constraints.lower,
+            cp.quad_form(x, cp.psd_wrap(S)) <= target ** 2]
+    up = np.isfinite(r.constraints.upper)
+    if up.any():
+        cons.append(x[np.flatnonzero(up)] <= r.constraints.upper[up])
+    for g in range(len(r.constraints.group_names)):
+        a = r.constraints.group_matrix[g]
+        cons += [a @ x >= r.constraints.group_lower[g], a @ x <= r.constraints.group_upper[g]]
+    cp.Problem(cp.Maximize(mu @ x), cons).solve(solver="CLARABEL")
+    assert mu @ w >= mu @ x.value - 1e-8

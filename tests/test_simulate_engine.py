@@ -79,7 +79,7 @@ def test_kan_zhou_closed_form_deterministic():
 def _kz_check(draws, seed):
     mu, cov = recipe_a(10)
     spec = _spec(mu, cov, [KZ_RULE], draws=draws, seed=seed, frontier_points=0, attribution=False,
-                 self_check_draws=draws)
+                 self_check_draws=draws, draw="histories")
     res = run_resampling(spec).to_summary()
     pop = res["rules"]["plug-in"]["population"]
     kz = kan_zhou(squared_sharpe(mu, cov), 10, 120, 3.0)
@@ -90,6 +90,7 @@ def test_engine_matches_kan_zhou_fast():
     """The engine (normal generator, estimators' sample-mle covariance, optimise's cash-budget
     mean-variance rule, population scoring) against Kan & Zhou (2007): within 3 MC se."""
     pop, kz, check = _kz_check(3000, 20261202)
+    assert check["draw_path"] == "histories"
     z = (pop["ceq_mean"] - kz.expected_utility) / pop["ceq_se"]
     assert abs(z) < 3, z
     # and the engine's own self-check (direct plug-in rule on the check draws)

@@ -189,3 +189,35 @@ def test_study_without_resample_section(tmp_path):
     s = json.loads((out / "summary.json").read_text())
     assert "skipped" in s["resample"] and "skipped" in s["backtest"]
     assert s["rules"]["proposed"]["in_sample_weights"]
+
+
+def test_keep_draws_writes_draws_npz_and_progress_counts_every_draw(tmp_path):
+    _write_history(tmp_path)
+    f = tmp_path / "s.toml"
+    f.write_text(STUDY.replace("frontier_points = 6", "frontier_points = 6\nkeep_draws = true"))
+    prepared = prepare_study(load_study(f), draws=130)
+    from simulate import block_plan, run_resampling
+
+    seen = []
+    result = run_resampling(prepared.spec, progress=seen.append)
+    assert sum(seen) == sum(b.stop - b.start for b in block_plan(prepared.spec))
+    out = finish_study(prepared, result, tmp_path / "run", pack=False)
+    with np.load(out / "draws.npz") as z:
+        assert z["weights"].shape == (130, 3, 4)
+        assert list(z["rules"]) == ["equal-weight", "proposed", "min-var-short"]
+        assert list(z["assets"]) == ASSETS
+        s = json.loads((out / "summary.json").read_text())
+        np.testing.assert_allclose(z["weights"][:, 1].mean(axis=0),
+                                   [s["rules"]["proposed"]["weights"][a]["mean"] for a in ASSETS],
+                                   rtol=1e-10, atol=1e-14)
+
+
+def test_default_run_folder_is_named_after_the_study(study, tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    text = study.read_text().replace('name = "unit-study"', 'name = "Unit Study: Q4 (draft)"')
+    study.write_text(text)
+    assert main(["study", str(study), "--no-pack", "--quiet", "--draws", "50"]) == 0
+    out = tmp_path / "runs" / "unit-study-q4-draft"
+    m = json.loads((out / "manifest.json").read_text())
+    assert m["command"][:3] == ["noiseproof", "study", str(study)]
+    assert "--draws" in m["command"] and "--quiet" in m["command"]

@@ -30,7 +30,7 @@ rule types (--rule):
 constraints: long-only unless --allow-short; fully invested (--budget full) or with a
 cash sleeve earning --risk-free (--budget cash: risky weights may sum to less than 1; with
 shorting allowed, cash may be negative, i.e. borrowing). --bound ASSET=LOW:HIGH and
---group NAME=A,B,C:LOW:HIGH take decimals (0.4 = 40 %%); leave a side empty for no bound
+--group NAME=A,B,C:LOW:HIGH take decimals (0.4 = 40 per cent); leave a side empty for no bound
 on that side. All rates are per period (the data's frequency), as decimals.
 
 JSON fields: rule, params, assets, weights (asset -> decimal), cash (decimal, 0 when fully
@@ -46,8 +46,8 @@ investment advice."""
 
 #: The rule types (kept literal so that ``--help`` does not import numba; a test checks it
 #: equals ``optimise.RULE_TYPES``).
-RULE_TYPES = ("equal-weight", "inverse-volatility", "equal-risk-contribution", "min-variance",
-              "mean-variance", "max-sharpe", "target-return", "target-volatility")
+RULE_TYPES = ("equal-weight", "min-variance", "mean-variance", "max-sharpe", "target-return",
+              "target-volatility", "inverse-volatility", "equal-risk-contribution")
 
 
 def register(sub) -> None:

@@ -2,7 +2,7 @@
 from __future__ import annotations
 
 import os
-import sys
+import re
 from pathlib import Path
 
 from estimators.core import SettingsError
@@ -35,6 +35,12 @@ def register(sub) -> None:
     p.set_defaults(func=run)
 
 
+def folder_name(study_name: str) -> str:
+    """A safe folder name from a study's name: lower case, runs of other characters -> '-'."""
+    slug = re.sub(r"[^a-z0-9._]+", "-", study_name.lower()).strip("-.")
+    return slug[:80].rstrip("-.") or "study"
+
+
 def run(args) -> int:
     from ..runner import run_study
     from ..studyfile import load_study
@@ -49,8 +55,14 @@ def run(args) -> int:
         raise SettingsError(f"--workers {args.workers} is more than four per core on this "
                             f"machine ({os.cpu_count()} cores)")
     settings = load_study(args.study)
-    out = Path(args.out) if args.out else Path("runs") / settings.name
-    argv = ["noiseproof", "study"] + list(getattr(args, "_argv", []) or sys.argv[2:])
+    out = Path(args.out) if args.out else Path("runs") / folder_name(settings.name)
+    argv = ["noiseproof", "study", args.study]
+    for flag, value in (("--draws", args.draws), ("--seed", args.seed),
+                        ("--workers", args.workers if args.workers != 1 else None),
+                        ("--out", args.out)):
+        if value is not None:
+            argv += [flag, str(value)]
+    argv += [flag for flag, on in (("--quiet", args.quiet), ("--no-pack", args.no_pack)) if on]
     run_dir = run_study(settings, out, workers=args.workers, quiet=args.quiet,
                         pack=not args.no_pack, argv=argv, draws=args.draws, seed=args.seed)
     if not args.quiet:
