@@ -109,6 +109,30 @@ def floor_rate(n, draws, length=LENGTH):
         return done / (time.perf_counter() - t)
 
 
+def _spin(n):
+    s = 0
+    for i in range(n):
+        s += i * i
+    return s
+
+
+def machine_parallel_speedup(n=4_000_000):
+    """Speed-up of 2 processes over 1 on a pure-Python loop: what the cores give right now."""
+    import multiprocessing as mp
+
+    t = time.perf_counter()
+    _spin(n)
+    _spin(n)
+    one = time.perf_counter() - t
+    ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else None
+    with (ctx or mp).Pool(2) as pool:
+        pool.map(_spin, [1000, 1000])
+        t = time.perf_counter()
+        pool.map(_spin, [n, n])
+        two = time.perf_counter() - t
+    return one / two
+
+
 # ------------------------------------------------------------------ per-draw loops
 
 def _draw_and_estimate(rng, lt, mu, n):
@@ -275,6 +299,9 @@ def main(argv=None):
         kc, kw = startup_times(_KERNELS_ONLY)
         print(f"           simulate's own kernels: cold {kc:.2f} s, warm {kw:.2f} s "
               f"(import + first call)")
+    par = machine_parallel_speedup()
+    print(f"cores now  2 processes of a pure-Python loop run {par:.2f}x one (the ceiling for "
+          f"2 workers at this moment; 2.00 on an idle 2-core machine)")
     rows = []
     for n in sizes:
         d_engine = int({10: 40_000, 50: 10_000, 200: 1_000}.get(n, 2_000) * scale) or 250
@@ -337,6 +364,8 @@ def main(argv=None):
                               f"{target:,}" if target else "-",
                               ("yes" if mom and mom >= target else "no") if target else "-"]))
         print("(draws per second, one core; bootstrap rates use the history path, as they must)")
+    par_after = machine_parallel_speedup()
+    print(f"cores now  2 processes of a pure-Python loop run {par_after:.2f}x one (after)")
     print(f"load avg   {_load()} (after)")
     return 0
 

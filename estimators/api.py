@@ -1,4 +1,4 @@
-"""Public entry points: one window (:func:`estimate`) and a batch of windows (:func:`estimate_batch`).
+"""Public entry points: one window (:func:`estimate`) and a batch (:func:`estimate_batch`).
 
 Both validate once, then run the same chunked code path (a single window is a batch of
 one), so a batch gives the same numbers as a loop over its windows.
@@ -170,7 +170,8 @@ def _returns_iv(returns):
         except (TypeError, ValueError) as exc:
             raise DataError(f"returns are not numeric: {exc}") from None
     if arr.ndim != 2:
-        raise DataError(f"returns must be a (T, N) table of periods x assets; got shape {arr.shape}")
+        raise DataError(
+            f"returns must be a (T, N) table of periods x assets; got shape {arr.shape}")
     if arr.shape[1] == 0:
         raise DataError("returns have no assets (N = 0)")
     return np.ascontiguousarray(arr), assets, rows
@@ -493,7 +494,8 @@ def check_invertible(cov, what="covariance", *, max_condition=MAX_CONDITION):
         first = int(np.argmax(bad.ravel()))
         where = f" (draw {first})" if c.ndim == 3 else ""
         value = float(cond.ravel()[first])
-        desc = "singular" if not np.isfinite(value) else f"ill-conditioned (condition number {value:.3g})"
+        desc = ("singular" if not np.isfinite(value)
+                else f"ill-conditioned (condition number {value:.3g})")
         raise SingularCovarianceError(
             f"{what}{where} is {desc}, above the limit {max_condition:.0e} for an inverse; "
             f"use a shrinkage covariance estimator such as {_SHRINK_SUGGESTION}"

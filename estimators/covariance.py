@@ -121,9 +121,10 @@ def ledoit_wolf_identity(chunk, params, out):
 
     Source: Ledoit, O. & Wolf, M. (2004), "A well-conditioned estimator for
     large-dimensional covariance matrices", Journal of Multivariate Analysis 88(2),
-    365-411. Conventions: data demeaned by the column means, ``S`` with divisor 1/T; this
-    is what scikit-learn's ``LedoitWolf`` (1.9.1, ``assume_centered=False``) does, and
-    the tests check intensity and matrix against it. One asset: ``delta = 0``.
+    365-411 (pages from memory). Conventions: data demeaned by the column means, ``S``
+    with divisor 1/T; this is what scikit-learn's ``LedoitWolf`` (1.9.1,
+    ``assume_centered=False``) does, and the tests check intensity and matrix against it.
+    One asset: ``delta = 0``.
     """
     chunk.scaled_scatter(1.0 / chunk.T, out)
     delta = np.empty(chunk.B)

@@ -33,12 +33,12 @@ def bayes_stein(chunk, params):
 
     ``w`` is reported as the mean-shrinkage intensity. Source: Jorion, P. (1986),
     "Bayes-Stein estimation for portfolio analysis", Journal of Financial and
-    Quantitative Analysis 21(3), 279-292; the tests check the worked toy example of
-    ../shared/REFERENCES.md section 10. Needs ``T >= N + 3`` rows and an invertible sample
-    covariance (condition number at most ``BAYES_STEIN_MAX_CONDITION``); otherwise use
-    ``'james-stein'``, which needs no inverse. Only the mean is shrunk: the covariance
-    comes from the covariance estimator chosen alongside (Jorion's predictive covariance
-    is not applied).
+    Quantitative Analysis 21(3), 279-292 (pages from memory); the tests check the worked
+    toy example of ../shared/REFERENCES.md section 10. Needs ``T >= N + 3`` rows and an
+    invertible sample covariance (condition number at most
+    ``BAYES_STEIN_MAX_CONDITION``); otherwise use ``'james-stein'``, which needs no inverse.
+    Only the mean is shrunk: the covariance comes from the covariance estimator chosen
+    alongside (Jorion's predictive covariance is not applied).
     """
     T, N = chunk.T, chunk.N
     m = chunk.mean

@@ -201,6 +201,8 @@ def prepare_study(settings: StudySettings, *, draws: Optional[int] = None,
     settings = settings.with_overrides(draws=draws, seed=seed)
     log: list = []
     _stamp(log, f"study '{settings.name}' ({settings.path or 'text'})")
+    if settings.resample is None and (draws is not None or seed is not None):
+        _stamp(log, "note: --draws / --seed have no effect: the study has no [resample] section")
     history, assumptions, data_summary = _load_data(settings, log)
     if history is not None:
         assets = tuple(history.assets)
@@ -372,7 +374,14 @@ def _verdict(prepared: PreparedStudy, summary: dict) -> dict:
     """The stated criteria of "does it survive input noise?" for the policy rule."""
     v = prepared.settings.verdict
     names = [rs.name for rs in prepared.rule_specs if rs.name != "equal-weight"]
-    policy = prepared.settings.policy or (names[0] if names else "equal-weight")
+    settings_out = {"max_band_width": v.max_band_width,
+                    "min_prob_beats_equal_weight": v.min_prob_beats_equal_weight,
+                    "significance": v.significance}
+    if not names:
+        return {"proposed": None, "rule": None, "answer": "not assessed",
+                "reason": "the study has no rule besides 1/N", "criteria": [],
+                "settings": settings_out, "criteria_passed": 0, "criteria_assessed": 0}
+    policy = prepared.settings.policy or names[0]
     rule = summary["rules"].get(policy, {})
     criteria = []
     weights = rule.get("weights")
@@ -423,9 +432,7 @@ def _verdict(prepared: PreparedStudy, summary: dict) -> dict:
     else:
         answer = "does not survive"
     return {"proposed": policy, "rule": policy, "answer": answer, "criteria": criteria,
-            "settings": {"max_band_width": v.max_band_width,
-                         "min_prob_beats_equal_weight": v.min_prob_beats_equal_weight,
-                         "significance": v.significance},
+            "settings": settings_out,
             "criteria_passed": sum(bool(x) for x in decided), "criteria_assessed": len(decided)}
 
 
@@ -557,7 +564,9 @@ def finish_study(prepared: PreparedStudy, resample_result, out, *, quiet: bool =
     quiet : bool
         Unused here but accepted for symmetry with :func:`run_study`.
     pack : bool
-        Build the evidence pack (``reports.build_pack``).
+        Build the evidence pack (``reports.build_pack``). When the pack fails, the run
+        folder is still moved into place (its results are complete; log.txt says what
+        failed) and the pack's error is raised afterwards.
     argv : sequence of str, optional
         The command line, recorded in manifest.json.
     started : float, optional
@@ -607,9 +616,15 @@ def finish_study(prepared: PreparedStudy, resample_result, out, *, quiet: bool =
         _stamp(log, f"wrote summary.json, {len(tables)} tables")
         _write_json(tmp / "manifest.json", _manifest(prepared, out, argv, started, created))
         (tmp / "log.txt").write_text("\n".join(log) + "\n", encoding="utf-8")
+        pack_error = None
         if pack:
-            note = _build_pack(tmp)
-            _stamp(log, note)
+            try:
+                _stamp(log, _build_pack(tmp))
+            except Exception as exc:      # the results stand; the pack failure is reported
+                pack_error = exc
+                shutil.rmtree(tmp / "pack", ignore_errors=True)
+                _stamp(log, f"pack failed ({exc.__class__.__name__}): "
+                            f"{' '.join(str(exc).split())}; the run folder is complete without it")
         manifest = json.loads((tmp / "manifest.json").read_text())
         manifest["wall_time_seconds"] = round(time.perf_counter() - started, 3)
         _write_json(tmp / "manifest.json", manifest)
@@ -619,6 +634,9 @@ def finish_study(prepared: PreparedStudy, resample_result, out, *, quiet: bool =
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
+    if pack_error is not None:
+        # the run folder is in place; the pack's own error is raised after it
+        raise pack_error
     return out
 
 

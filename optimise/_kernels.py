@@ -12,7 +12,8 @@ The quadratic programme solved by :func:`qp_solve` is::
                 lo <= A x <= hi               (M general rows; lo == hi is an equality)
 
 ``H`` is symmetric positive semidefinite. The method is a primal active-set method
-(Nocedal & Wright 2006, *Numerical Optimization*, 2nd ed., algorithm 16.3) on a working
+(Nocedal & Wright 2006, *Numerical Optimization*, 2nd ed., algorithm 16.3; citation from
+memory) on a working
 set made of variables fixed at a bound and general rows held at one side. Each
 equality-constrained subproblem is solved through a Cholesky factor of the free block
 ``H_FF`` and the Schur complement of the working rows. When ``H_FF`` is numerically
@@ -279,7 +280,7 @@ def qp_solve(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i)
     """Solve one QP by the primal active-set method, starting from a feasible ``x``.
 
     When a free block of ``H`` is numerically singular, the problem is solved by the
-    proximal-point method (Rockafellar 1976, *SIAM J. Control Optim.* 14(5)): a sequence
+    proximal-point method (Rockafellar 1976, *SIAM J. Control Optim.* 14(5), from memory): a sequence
     of strictly convex QPs ``min 1/2 x'Hx - c'x + delta/2 |x - x_k|^2``, each solved by the
     same active-set method warm-started from the last, until ``delta |x_{k+1} - x_k|`` (the
     stationarity error for the original problem) is below the tolerance. Nothing is
@@ -614,6 +615,7 @@ def qp_batch(H, c, A, lo, hi, lb, ub, x0, warm, rescale_row, maxiter, X, Z, NU, 
     m = A.shape[1]
     work_f, work_i = make_work(n, m)
     x = np.empty(n)
+    xk0 = np.zeros(n)
     vs = np.zeros(n, dtype=np.int64)
     rs = np.zeros(m, dtype=np.int64)
     have_prev = False
@@ -641,8 +643,21 @@ def qp_batch(H, c, A, lo, hi, lb, ub, x0, warm, rescale_row, maxiter, X, Z, NU, 
             for j in range(n):
                 x[j] = x0[d, j]
             _states(x, A[d], lo[d], hi[d], lb, ub, vs, rs)
-        st, it = qp_solve(H[d], c[d], A[d], lo[d], hi[d], lb, ub, x, vs, rs,
-                          Z[d], NU[d], maxiter, work_f, work_i)
+        st, it = _qp_core(H[d], c[d], A[d], lo[d], hi[d], lb, ub, x, vs, rs,
+                          Z[d], NU[d], maxiter, work_f, work_i, 0.0, xk0)
+        if st == FACTOR_SINGULAR:
+            # a singular free block: the optimum may not be unique, and which optimum the
+            # proximal-point path reaches depends on its start. Always start it from the
+            # cold point, so that the answer does not depend on the previous problem
+            # (block size, order).
+            if used_prev:
+                used_prev = False
+                for j in range(n):
+                    x[j] = x0[d, j]
+                _states(x, A[d], lo[d], hi[d], lb, ub, vs, rs)
+            st, it2 = qp_solve(H[d], c[d], A[d], lo[d], hi[d], lb, ub, x, vs, rs,
+                               Z[d], NU[d], maxiter, work_f, work_i)
+            it += it2
         if st != OK and used_prev:
             # never let a warm start decide the outcome: retry from the cold point
             for j in range(n):
@@ -863,9 +878,11 @@ def _quad(S, x):
 def erc_batch(S, budgets, tol, maxiter, X, status, iters):
     """Long-only equal (or budgeted) risk contributions by Newton's method.
 
-    Solves the strictly convex problem ``min 1/2 y'Sy - sum_i b_i log y_i`` over ``y > 0``
-    (Maillard, Roncalli & Teiletche 2010, eq. for the log-barrier form; Spinu 2013), whose
-    optimum satisfies ``y_i (S y)_i = b_i``; the weights are ``y / sum(y)``.
+    Solves the strictly convex problem ``min 1/2 y'Sy - sum_i b_i log y_i`` over ``y > 0``,
+    whose optimum satisfies ``y_i (S y)_i = b_i`` (set the gradient to zero); the weights
+    are ``y / sum(y)``. Maillard, Roncalli & Teiletche (2010) characterise the equal-risk
+    portfolio through a log-constrained variance minimisation of this kind; the Newton
+    approach on the barrier form follows Spinu (2013) (both citations from memory).
 
     Parameters
     ----------

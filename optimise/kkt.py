@@ -11,7 +11,7 @@ For the convex QP ``min 1/2 x'Hx - c'x`` subject to ``lb <= x <= ub`` and
   equality.
 
 (Karush 1939; Kuhn & Tucker 1951; e.g. Nocedal & Wright 2006, *Numerical Optimization*,
-theorem 12.1 and section 16.1.)
+theorem 12.1 and section 16.1; citations from memory.)
 
 :func:`kkt_residuals` measures the four conditions. Given the solver's multipliers it
 checks them; without multipliers it finds the best ones itself by non-negative least

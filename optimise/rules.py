@@ -24,7 +24,7 @@ Rule types (``RULE_TYPES``) and what they solve
     ``min y'Sigma y`` s.t. ``(mu - risk_free)'y = 1`` and ``y`` in the cone of the
     constraints scaled by ``kappa = 1'y >= 0``; then ``w = y / 1'y`` (the standard
     homogenisation of a fractional programme, e.g. Cornuejols & Tutuncu 2007,
-    *Optimization Methods in Finance*, section 8.2).
+    *Optimization Methods in Finance*, section 8.2; citation from memory).
 ``target-return``
     ``min w'Sigma w`` s.t. ``w'mu >= target`` (with cash: ``w'(mu - rf) + rf >= target``).
 ``target-volatility``
@@ -487,14 +487,18 @@ class Rule:
 
     def _qp(self, means, covs, single: bool):
         cons = self.constraints
-        if self.type == "max-sharpe" and not cons.long_only and not cons.bounded:
-            self._check_conditioning(covs, single)
-        elif self.type != "max-sharpe":
-            self._check_conditioning(covs, single)
+        self._check_conditioning(covs, single)     # only when the weights are unbounded
         H, c, A, lo, hi, lb, ub = self._qp_problem(means, covs)
         x0 = self._starts(means, covs, H, c, A, lo, hi, lb, ub, single)
         X, Z, NU, status = _run_qp(H, c, A, lo, hi, lb, ub, x0,
                                    rescale_row=0 if self.type == "max-sharpe" else -1)
+        retry = np.flatnonzero(status == K.MAXITER)
+        if retry.size:   # cold start with a ten times larger iteration limit, one by one
+            for d in retry:
+                sl = slice(d, d + 1)
+                Xd, Zd, Nd, sd = _run_qp(H[sl], c[sl], A[sl], lo[sl], hi[sl], lb, ub, x0[sl],
+                                         warm=False, maxiter_factor=10 * _MAXITER_FACTOR)
+                X[d], Z[d], NU[d], status[d] = Xd[0], Zd[0], Nd[0], sd[0]
         self._raise_status(status, single)
         kkt = _kkt_batch(H, c, A, lo, hi, lb, ub, X, Z, NU)
         self._raise_kkt(kkt, single)
@@ -546,7 +550,7 @@ class Rule:
             _, xmax = self._max_returns(mu)
         else:  # unbounded weights: the maximum return is infinite, never inside the target
             xmax = np.full((D, n), np.nan)
-        x0 = np.broadcast_to(cons.feasible_point, (D, n)).copy()
+        x0 = self._cold_points(covs, np.zeros((D, n)))   # a low-variance vertex when boxed
         X = np.empty((D, n))
         Z = np.empty((D, n))
         NU = np.empty((D, A.shape[0]))
@@ -598,7 +602,9 @@ class Rule:
         return X, spread, None
 
 
-def _run_qp(H, c, A, lo, hi, lb, ub, x0, rescale_row=-1, warm=True):
+def _run_qp(H, c, A, lo, hi, lb, ub, x0, rescale_row=-1, warm=True,
+            maxiter_factor=_MAXITER_FACTOR):
+    """Call the batch kernel; returns (X, Z, NU, status)."""
     D, n = c.shape
     m = A.shape[1]
     X = np.empty((D, n))
@@ -607,7 +613,7 @@ def _run_qp(H, c, A, lo, hi, lb, ub, x0, rescale_row=-1, warm=True):
     status = np.empty(D, dtype=np.int64)
     iters = np.empty(D, dtype=np.int64)
     K.qp_batch(np.ascontiguousarray(H), np.ascontiguousarray(c), A, lo, hi, lb, ub,
-               np.ascontiguousarray(x0), warm, rescale_row, _MAXITER_FACTOR * (n + m) + 50,
+               np.ascontiguousarray(x0), warm, rescale_row, maxiter_factor * (n + m) + 50,
                X, Z, NU, status, iters)
     return X, Z, NU, status
 

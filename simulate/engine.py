@@ -314,9 +314,8 @@ def draw_path(spec: ResampleSpec, length: int, *, strict: bool = True):
 
     The moments path (draw the sample mean and the Wishart scatter matrix directly) applies
     when the generator is normal, every rule that uses inputs has estimators that are
-    functions of the sample mean and covariance alone (``estimators.needs_observations``
-    is false: sample mean with the ``sample`` or ``sample-mle`` covariance), and
-    ``T - 1 >= N``. ``draw = "auto"`` takes it exactly then; ``"histories"`` never;
+    functions of the sample mean and covariance alone (a mean in :data:`MOMENTS_MEANS`
+    with a covariance in :data:`MOMENTS_COVARIANCES`), and ``T - 1 >= N``. ``draw = "auto"`` takes it exactly then; ``"histories"`` never;
     ``"moments"`` requires it and raises SettingsError naming what prevents it (with
     ``strict=False``, e.g. for a sweep length, a singular scatter falls back to histories).
     """
@@ -326,15 +325,11 @@ def draw_path(spec: ResampleSpec, length: int, *, strict: bool = True):
     if spec.generator != "normal":
         reasons.append(f"the '{spec.generator}' generator has no moments shortcut (only "
                        f"'normal' has)")
-    try:
-        from estimators import needs_observations
-    except ImportError:  # pragma: no cover - estimators not installed
-        needs_observations = None
     needing = {}
     for rs in spec.rules:
         if not _uses_inputs(rs):
             continue
-        if needs_observations is None or needs_observations(rs.mean, rs.covariance):
+        if rs.mean not in MOMENTS_MEANS or rs.covariance not in MOMENTS_COVARIANCES:
             needing.setdefault((rs.mean, rs.covariance), []).append(rs.name)
     for (mean, cov), names in needing.items():
         who = f"rule '{names[0]}'" if len(names) == 1 else \
@@ -487,7 +482,7 @@ class BlockResult:
                 "fingerprint": self.fingerprint, "notes": self.notes}
         arrays["meta"] = np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8)
         buf = io.BytesIO()
-        np.savez(buf, **arrays)
+        np.savez_compressed(buf, **arrays)
         payload = buf.getvalue()
         digest = hashlib.sha256(payload).hexdigest().encode()
         return self._MAGIC + digest + b" " + str(len(payload)).encode() + b"\n" + payload
@@ -696,10 +691,52 @@ def _estimate_batch(histories: np.ndarray, rs: RuleSpec):
     return np.asarray(mb.mean, dtype=np.float64), np.asarray(mb.covariance, dtype=np.float64)
 
 
+#: Estimators that are functions of the sample mean and scatter matrix alone, so that the
+#: moments path can feed them (the covariances divide the scatter by T-1 or T; the
+#: Bayes-Stein and James-Stein means use the sample mean, the scatter and its diagonal).
+MOMENTS_MEANS = ("sample", "bayes-stein", "james-stein")
+MOMENTS_COVARIANCES = ("sample", "sample-mle")
+
+
+class _MomentsChunk:
+    """The estimators' chunk interface (``estimators._chunk.Chunk``) over drawn moments.
+
+    Offers what the moments-only estimators read: ``B``, ``T``, ``N``, ``mean``,
+    ``scatter``, ``variances(ddof)`` and ``scaled_scatter(factor, out)``; the demeaned
+    observations (``Y``) do not exist on this path. A test checks that every estimator in
+    :data:`MOMENTS_MEANS` / :data:`MOMENTS_COVARIANCES` gives the same numbers here as
+    ``estimators.estimate_batch`` on histories with the same sample moments.
+    """
+
+    def __init__(self, sm):
+        self.B, self.T, self.N = sm.shape
+        self.mean = sm.mean
+        self.scatter = sm.scatter
+
+    def variances(self, ddof):
+        return np.diagonal(self.scatter, axis1=1, axis2=2) / (self.T - ddof)
+
+    def scaled_scatter(self, factor, out):
+        np.multiply(self.scatter, factor, out=out)
+        return out
+
+
 def _from_sample_moments(sm, rs: RuleSpec):
-    """Estimates from drawn sample moments (moments path): sample mean, S / (T-1) or S / T."""
-    divisor = sm.length - 1 if rs.covariance == "sample" else sm.length
-    return sm.mean, sm.scatter / float(divisor)
+    """Estimates from drawn sample moments (moments path), through the estimators' own code."""
+    from estimators.registry import lookup
+    from estimators._chunk import WindowProblem
+    from estimators.core import SingularCovarianceError
+
+    chunk = _MomentsChunk(sm)
+    params = {k: v for k, v in rs.params.items() if k not in ("given_mean", "given_covariance")}
+    covs = np.empty_like(sm.scatter)
+    try:
+        means, _ = lookup(rs.mean, "mean").compute(chunk, params)
+        lookup(rs.covariance, "covariance").compute(chunk, params, covs)
+    except WindowProblem as p:
+        err = SingularCovarianceError if p.singular else DataError
+        raise err(f"draw {p.window} of the chunk: {p.message}") from None
+    return np.asarray(means, dtype=np.float64), covs
 
 
 def _moments_for(ctx: _Context, histories, valid=None):
@@ -799,6 +836,7 @@ def run_block(spec: ResampleSpec, block_index: int) -> BlockResult:
     BlockResult
         Picklable; :meth:`BlockResult.to_bytes` gives its durable form.
     """
+    spec = spec.resolved()          # no-op for a resolved spec (prepare_study's are)
     plan = block_plan(spec)
     if not 0 <= block_index < len(plan):
         raise SettingsError(f"block index {block_index} out of range (0..{len(plan) - 1})")
@@ -871,11 +909,22 @@ class _Accumulator:
                            dict(self.notes))
 
 
+#: Relative margin below which a rule and 1/N tie (rounding of identical allocations).
+TIE_RTOL = 1e-10
+
+
 def _beats(metrics, ew):
-    """(R, 2) counts of draws beating 1/N on CEQ and on Sharpe (failed draws never do)."""
+    """(R, 2) counts of draws beating 1/N on CEQ and on Sharpe (failed draws never do).
+
+    A draw beats 1/N when its figure is above 1/N's by more than ``TIE_RTOL`` relative to
+    1/N's scale (``|ceq| + variance`` for CEQ, ``|sharpe|`` for Sharpe), so that the
+    rounding of an allocation equal to 1/N never counts as beating it.
+    """
+    tol_ceq = TIE_RTOL * (np.abs(ew[:, None, 4]) + np.abs(ew[:, None, 1])) + 1e-300
+    tol_sh = TIE_RTOL * np.abs(ew[:, None, 3]) + 1e-300
     with np.errstate(invalid="ignore"):
-        return np.stack([(metrics[:, :, 4] > ew[:, None, 4]).sum(axis=0),
-                         (metrics[:, :, 3] > ew[:, None, 3]).sum(axis=0)], axis=1)
+        return np.stack([(metrics[:, :, 4] > ew[:, None, 4] + tol_ceq).sum(axis=0),
+                         (metrics[:, :, 3] > ew[:, None, 3] + tol_sh).sum(axis=0)], axis=1)
 
 
 class _MainAccumulator(_Accumulator):
@@ -1343,7 +1392,8 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
         qs = np.round(np.arange(1, 100) / 100.0, 2)
         qrows = []
         for i, name in enumerate(names):
-            qv = np.quantile(ms[:, i, :], qs, axis=0)          # (99, 5)
+            with np.errstate(invalid="ignore"):
+                qv = np.nanquantile(ms[:, i, :], qs, axis=0)   # (99, 5); failed draws left out
             for k, metric in enumerate(METRICS):
                 for q, v in zip(qs, qv[:, k]):
                     qrows.append({"rule": name, "metric": metric, "quantile": float(q),

@@ -242,7 +242,8 @@ def test_kernels_match_numpy_twins(rng):
     ch = Chunk(X)
     S0 = ch.scatter / 15
     for numba_k, twin in ((_kernels.lw_identity, _kernels.lw_identity_numpy),
-                          (_kernels.lw_constant_correlation, _kernels.lw_constant_correlation_numpy),
+                          (_kernels.lw_constant_correlation,
+                           _kernels.lw_constant_correlation_numpy),
                           (_kernels.lw_single_index, _kernels.lw_single_index_numpy)):
         S = S0.copy()
         delta = np.empty(7)

@@ -83,5 +83,5 @@ def test_help_lists_every_estimator(capsys):
     out = capsys.readouterr().out
     for name in list(E.MEAN_ESTIMATORS) + list(E.COVARIANCE_ESTIMATORS):
         if name != "given":
-            assert f"  {name} " in out
+            assert f"\n  {name}\n" in out
     assert "--half-life" in out and "JSON fields" in out

@@ -309,8 +309,11 @@ def test_failed_draws_are_counted_not_hidden():
     means are near zero and short histories some draws fail: they are counted and excluded."""
     mu = np.array([0.0005, 0.0004, 0.0003])
     cov = np.diag([0.002, 0.003, 0.004])
-    s = run_resampling(_spec(mu, cov, [("ms", "max-sharpe", {}, "sample", "sample")], draws=200,
-                             length=24, frontier_points=0, attribution=False)).to_summary()
+    res = run_resampling(_spec(mu, cov, [("ms", "max-sharpe", {}, "sample", "sample")],
+                               draws=200, length=24, frontier_points=0, attribution=False))
+    s = res.to_summary()
+    q = res.tables()["population_quantiles"]
+    assert q["value"].notna().all()
     pop = s["rules"]["ms"]["population"]
     assert pop["draws_failed"] > 0
     assert pop["draws_scored"] + pop["draws_failed"] == 200
@@ -386,3 +389,50 @@ def test_a_rule_that_never_finds_an_allocation_is_an_error():
     with pytest.raises(InfeasibleError, match="no allocation in any"):
         run_resampling(_spec(mu, cov, [("ms", "max-sharpe", {}, "sample", "sample")], draws=20,
                              length=2000, frontier_points=0, attribution=False))
+
+
+def test_unresolved_and_resolved_specs_give_the_same_blocks():
+    """A batch runner may pass the spec before or after fitting nu: same blocks, same merge."""
+    rng = np.random.default_rng(2)
+    mu, cov = recipe_a(3)
+    history = rng.standard_t(6, size=(300, 3)) * 0.04 + mu
+    from simulate import population_moments
+
+    pm, pc = population_moments(history)
+    raw = replace(_spec(pm, pc, [LO_MV], draws=140, frontier_points=0), history=history,
+                  generator="student-t")
+    res = raw.resolved()
+    assert raw.degrees_of_freedom is None and res.degrees_of_freedom > 2
+    blocks = [run_block(raw, b.index) for b in block_plan(res)]
+    assert _dump(merge_blocks(raw, blocks)) == _dump(run_resampling(res))
+
+
+def test_one_asset():
+    """N = 1: every full-budget rule holds the asset; metrics are the asset's own."""
+    mu, cov = np.array([0.006]), np.array([[0.0016]])
+    s = run_resampling(_spec(mu, cov, [LO_MV], draws=130, frontier_points=0,
+                             self_check_draws=130)).to_summary()
+    for name in ("equal-weight", "mv"):
+        r = s["rules"][name]
+        assert r["weights"]["asset0"]["mean"] == pytest.approx(1.0, abs=1e-12)
+        assert r["weights"]["asset0"]["p5"] == pytest.approx(1.0, abs=5e-4)
+        assert r["population"]["variance_mean"] == pytest.approx(0.0016, rel=1e-12)
+    assert s["rules"]["mv"]["population"]["prob_beats_equal_weight_ceq"] == 0.0
+    assert "standardised_difference" in s["self_check"]
+
+
+def test_fewer_rows_than_assets():
+    """T < N: the sample covariance of every draw is singular. Long-only min-variance still has
+    an answer or the failures are counted; the auto path falls back to histories."""
+    mu, cov = recipe_a(8)
+    spec = _spec(mu, cov, [("minv", "min-variance", {}, "sample", "sample"),
+                           ("lw", "min-variance", {}, "sample", "ledoit-wolf-identity")],
+                 draws=130, length=6, frontier_points=0)
+    s = run_resampling(spec).to_summary()
+    assert s["resample"]["draw_path"] == "histories"
+    assert "below N" in s["resample"]["draw_path_reason"]
+    for name in ("minv", "lw"):
+        pop = s["rules"][name]["population"]
+        assert pop["draws_scored"] + pop["draws_failed"] == 130
+    # shrinkage keeps the covariance invertible: the shrunk rule never fails
+    assert s["rules"]["lw"]["population"]["draws_failed"] == 0

@@ -116,3 +116,42 @@ def test_both_paths_agree_statistically_on_the_same_study():
     # the moments path is reproducible too, whatever the workers
     again = run_resampling(replace(base, draw="moments"), workers=2).to_summary()
     assert json.dumps(again, sort_keys=True) == json.dumps(a, sort_keys=True)
+
+
+@pytest.mark.parametrize("mean", ["sample", "bayes-stein", "james-stein"])
+@pytest.mark.parametrize("covariance", ["sample", "sample-mle"])
+def test_moments_path_estimates_equal_the_estimators_on_histories(mean, covariance):
+    """Fed the sample mean and scatter of given histories, the moments path's estimates equal
+    ``estimators.estimate_batch`` on those histories (so the two paths share one definition)."""
+    from estimators import estimate_batch
+    from simulate.engine import RuleSpec, _from_sample_moments
+    from simulate.generators import SampleMoments
+
+    rng = np.random.default_rng(3)
+    mu, cov = recipe_a(6)
+    x = rng.multivariate_normal(mu, cov, size=(40, 30))            # (D, T, N)
+    m = x.mean(axis=1)
+    y = x - m[:, None, :]
+    w = np.matmul(y.transpose(0, 2, 1), y)
+    sm = SampleMoments(mean=m, scatter=0.5 * (w + w.transpose(0, 2, 1)), length=30)
+
+    class _R:
+        name, type, params, needs_mean, needs_covariance = "r", "mean-variance", {}, True, True
+
+    got_m, got_s = _from_sample_moments(sm, RuleSpec(_R(), mean, covariance))
+    ref = estimate_batch(x, mean, covariance)
+    np.testing.assert_allclose(got_m, ref.mean, rtol=1e-11, atol=1e-15)
+    np.testing.assert_allclose(got_s, ref.covariance, rtol=1e-11, atol=1e-17)
+
+
+def test_shrunk_means_take_the_moments_path():
+    mu, cov = recipe_a(5)
+    spec = _spec(mu, cov, [("bs", "mean-variance", {"risk_aversion": 3.0}, "bayes-stein", "sample"),
+                           ("js", "mean-variance", {"risk_aversion": 3.0}, "james-stein",
+                            "sample-mle")], draws=250, frontier_points=0, attribution=False)
+    s = run_resampling(spec).to_summary()
+    assert s["resample"]["draw_path"] == "moments"
+    h = run_resampling(replace(spec, draw="histories")).to_summary()
+    for name in ("bs", "js"):
+        pa, pb = s["rules"][name]["population"], h["rules"][name]["population"]
+        assert abs(pa["ceq_mean"] - pb["ceq_mean"]) < 4 * np.hypot(pa["ceq_se"], pb["ceq_se"])

@@ -221,3 +221,20 @@ def test_default_run_folder_is_named_after_the_study(study, tmp_path, monkeypatc
     m = json.loads((out / "manifest.json").read_text())
     assert m["command"][:3] == ["noiseproof", "study", str(study)]
     assert "--draws" in m["command"] and "--quiet" in m["command"]
+
+
+def test_a_failing_pack_keeps_the_results(study, tmp_path, monkeypatch):
+    import reports
+
+    from estimators.core import DataError
+
+    def broken(run_dir):
+        (run_dir / "pack").mkdir()
+        raise DataError("pack: invented failure for the test")
+
+    monkeypatch.setattr(reports, "build_pack", broken)
+    out = tmp_path / "run"
+    with pytest.raises(DataError, match="invented failure"):
+        finish_study(prepare_study(load_study(study), draws=50), None, out, pack=True)
+    assert (out / "summary.json").is_file() and not (out / "pack").exists()
+    assert "pack failed" in (out / "log.txt").read_text()

@@ -5,6 +5,7 @@ import argparse
 import json
 import math
 import sys
+import textwrap
 
 from estimators import COVARIANCE_ESTIMATORS, MEAN_ESTIMATORS, estimate
 from estimators.core import PERIODS_PER_YEAR
@@ -20,8 +21,14 @@ intensities; --json prints the per-period figures for other programs."""
 
 
 def _estimator_list(table):
-    return "\n".join(f"  {name:<34} {est.summary}" for name, est in table.items()
-                     if name != "given")
+    lines = []
+    for name, est in table.items():
+        if name == "given":
+            continue
+        lines.append(f"  {name}")
+        lines += textwrap.wrap(est.summary, width=88, initial_indent="      ",
+                               subsequent_indent="      ")
+    return "\n".join(lines)
 
 
 EPILOG = f"""\
@@ -155,8 +162,9 @@ def format_table(m, history) -> str:
         f"covariance estimator: {m.covariance_name}" + (
             f"  (divisor {m.divisor})" if m.divisor else "") + (
             f"  {_ewma_note(m.params)}" if m.params else ""),
-        "shrinkage intensity:  " + (f"{m.shrinkage:.4f} (weight on the target)"
-                                    if m.shrinkage is not None else "none (not a shrinkage estimator)"),
+        "shrinkage intensity:  " + (
+            f"{m.shrinkage:.4f} (weight on the target)" if m.shrinkage is not None
+            else "none (not a shrinkage estimator)"),
         "",
         f"annualised: mean x {ppy}, volatility x sqrt({ppy}); per-period figures with --json",
         f"{'asset':<{w}}  {'mean p.a.':>10}  {'vol p.a.':>9}",
