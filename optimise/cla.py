@@ -169,6 +169,8 @@ def efficient_frontier(mean, covariance, constraints: Constraints) -> Frontier:
     corners = [w.copy()]
     last_moved = -1
     null_moves = 0
+    entered = -1
+    blocked = set()
     for _ in range(20 * n + 100):
         part = _solve_partition(S, mu, state, lower, upper)
         if isinstance(part, _NullDirection):
@@ -183,6 +185,10 @@ def efficient_frontier(mean, covariance, constraints: Constraints) -> Frontier:
                     "and the path does not resolve; " + _SHRINK_HINT)
             w, hit, side = _move_along(w, part.d, mu, state, lower, upper)
             state[hit] = side
+            if hit == entered:
+                # the flat direction sends the asset that just entered straight back to its
+                # bound: entering gains nothing at this lambda; ignore it until lambda moves
+                blocked.add(hit)
             last_moved = hit
             if lam == 0.0:
                 corners[-1] = w.copy()      # the least-variance end with the higher mean
@@ -216,7 +222,7 @@ def efficient_frontier(mean, covariance, constraints: Constraints) -> Frontier:
                 kind_j = 1 if bj > 0 else -1
             else:
                 gj = p[j] + lam * q[j]
-                if j != last_moved and (gj * state[j] > ptol):
+                if j != last_moved and j not in blocked and (gj * state[j] > ptol):
                     ev = lam          # already on the wrong side: it leaves its bound now
                 elif state[j] < 0 and q[j] < -qtol:
                     ev = -p[j] / q[j]
@@ -225,7 +231,7 @@ def efficient_frontier(mean, covariance, constraints: Constraints) -> Frontier:
                 else:
                     continue
                 kind_j = 0
-            floor = lam + (eps if j == last_moved else -eps)
+            floor = lam + (eps if (j == last_moved or j in blocked) else -eps)
             if ev < floor:
                 continue
             ev = max(ev, lam)
@@ -233,6 +239,8 @@ def efficient_frontier(mean, covariance, constraints: Constraints) -> Frontier:
                 best, who, kind = ev, j, kind_j
         if who < 0:
             break
+        if best > lam + eps:
+            blocked.clear()
         lam = best
         w = wa + lam * wb
         w[state < 0] = lower[state < 0]
@@ -241,6 +249,7 @@ def efficient_frontier(mean, covariance, constraints: Constraints) -> Frontier:
         corners.append(w.copy())
         if kind == 0:
             state[who] = 0
+            entered = who
         else:
             state[who] = kind
             w[who] = upper[who] if kind > 0 else lower[who]
@@ -262,9 +271,53 @@ def efficient_frontier(mean, covariance, constraints: Constraints) -> Frontier:
     lams[-1] = 0.0
     means = W @ mu
     variances = np.einsum("ki,ij,kj->k", W, S, W)
+    _check_path(W, means, variances, mu, lower, upper)
+    if null_moves:
+        _check_optimal(W, lams, S, mu, lower, upper)
     for arr in (lams, W, means, variances):
         arr.setflags(write=False)
     return Frontier(lams, W, means, variances, constraints.assets)
+
+
+def _check_path(W, means, variances, mu, lower, upper):
+    """Re-check the traced frontier before returning it: feasible corners, means and
+    variances falling from the top corner to the bottom one, and the top corner at the
+    largest attainable mean. Only a singular covariance can make this fail."""
+    top = float((_greedy_fill(mu[None, :], lower, upper)[0]) @ mu)
+    scale_m = max(1e-300, float(np.max(np.abs(mu))))
+    scale_v = max(1e-300, float(np.max(np.abs(variances))))
+    ok = (np.all(W >= lower - 1e-9) and np.all(W <= upper + 1e-9)
+          and np.all(np.abs(W.sum(axis=1) - 1.0) <= 1e-9)
+          and np.all(np.diff(means) <= 1e-10 * scale_m)
+          and np.all(np.diff(variances) <= 1e-10 * scale_v)
+          and means[0] >= top - 1e-10 * scale_m)
+    if not ok:
+        raise SingularCovarianceError(
+            "critical line algorithm: the covariance is singular and the frontier could not "
+            "be traced reliably; " + _SHRINK_HINT)
+
+
+def _check_optimal(W, lams, S, mu, lower, upper):
+    """After singular steps, certify the traced frontier: every turning point and every
+    midpoint of a piece must have the least variance at its mean. Each point starts the
+    active-set solver on ``min w'Sw`` s.t. ``1'w = 1``, ``mu'w`` = its mean and the
+    bounds; a variance lower by more than 1e-9 (relative) rejects the frontier."""
+    n = mu.size
+    pts = [W[k] for k in range(len(W))]
+    pts += [0.5 * (W[k] + W[k + 1]) for k in range(len(W) - 1)]
+    P = np.array(pts)
+    D = P.shape[0]
+    A = np.broadcast_to(np.vstack([np.ones(n), mu]), (D, 2, n))
+    lo = np.column_stack([np.ones(D), P @ mu])
+    X, _, _, status = _run_qp(np.broadcast_to(S, (D, n, n)), np.zeros((D, n)), A, lo,
+                              lo.copy(), lower, upper, P.copy(), warm=False)
+    v_path = np.einsum("ki,ij,kj->k", P, S, P)
+    v_best = np.einsum("ki,ij,kj->k", X, S, X)
+    scale = max(float(np.max(np.abs(S))), 1e-300)
+    if np.any(status != 0) or np.any(v_path > v_best + 1e-9 * np.maximum(v_best, scale * 1e-6)):
+        raise SingularCovarianceError(
+            "critical line algorithm: the covariance is singular and the traced frontier "
+            "fails the optimality check; " + _SHRINK_HINT)
 
 
 class _NullDirection:
@@ -295,7 +348,10 @@ def _move_along(w, d, mu, state, lower, upper):
                                       "covariance meets no bound; " + _SHRINK_HINT)
     mean_loss = min(o[0] for o in options)
     tied = [o for o in options if o[0] <= mean_loss + 1e-15]
-    _, t, hit, side, step = min(tied, key=lambda o: o[1])
+    # among equal means, a zero-length move (an asset already at the bound it is pushed
+    # towards) changes nothing: take the shortest move that goes somewhere
+    moving = [o for o in tied if o[1] > 1e-15]
+    _, t, hit, side, step = min(moving or tied, key=lambda o: o[1])
     w = w + t * step
     w[hit] = upper[hit] if side > 0 else lower[hit]
     return w, hit, side

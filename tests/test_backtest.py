@@ -420,7 +420,7 @@ def test_costs_only_ever_lower_returns_property():
     st = pytest.importorskip("hypothesis.strategies")
 
     @hypothesis.settings(max_examples=25, deadline=None)
-    @hypothesis.given(seed=st.integers(0, 2 ** 32 - 1), bps=st.floats(0.0, 500.0),
+    @hypothesis.given(seed=st.integers(0, 2 ** 32 - 1), bps=st.floats(0.0, 500.0, allow_subnormal=False),
                       every=st.integers(1, 4))
     def check(seed, bps, every):
         rng = np.random.default_rng(seed)
@@ -430,7 +430,7 @@ def test_costs_only_ever_lower_returns_property():
         gross, net, tv, cost, _ = _kernels.hold_path(X, np.full(24, 0.002), 6, rows, W,
                                                      np.full(3, bps / 1e4))
         assert np.all(net <= gross + 1e-15)
-        np.testing.assert_allclose(cost[1:], bps / 1e4 * tv[1:], rtol=1e-12)
+        np.testing.assert_allclose(cost[1:], bps / 1e4 * tv[1:], rtol=1e-12, atol=1e-300)  # costs below 1e-300 are round-off
         # a period without a trade loses nothing to costs
         traded = np.zeros(18, bool)
         traded[rows[1:] - 6] = True
