@@ -294,6 +294,10 @@ def prepare_study(settings: StudySettings, *, draws: Optional[int] = None,
         bt_skipped = "the study has no [backtest] section"
     elif history is None:
         bt_skipped = "capital-market assumptions have no history to backtest"
+    elif history.n_periods < b.window + 3:
+        bt_skipped = (f"the history has {history.n_periods} periods; a backtest window of "
+                      f"{b.window} needs at least {b.window + 3} (3 out-of-sample periods)")
+        _stamp(log, f"backtest skipped: {bt_skipped}")
     else:
         bt_inputs = _backtest_inputs(settings, history, rule_specs, gamma, ppy, log)
     return PreparedStudy(settings=settings, history=history, assumptions=assumptions,
@@ -469,7 +473,7 @@ def _build_summary(prepared: PreparedStudy, result, bt, created: str) -> dict:
         kw = {k: v for k, v in prepared.backtest_inputs.items() if k != "rule_specs"}
         if isinstance(kw.get("cost_bps"), np.ndarray):
             kw["cost_bps"] = dict(zip(prepared.assets, map(float, kw["cost_bps"])))
-        summary["backtest"] = kw
+        summary["backtest"] = {**kw, **_clean_json(bt.settings_summary())}
         for name, entry in bt.to_summary().items():
             if name in summary["rules"]:
                 summary["rules"][name]["backtest"] = entry
@@ -617,6 +621,7 @@ def finish_study(prepared: PreparedStudy, resample_result, out, *, quiet: bool =
         _write_json(tmp / "manifest.json", _manifest(prepared, out, argv, started, created))
         (tmp / "log.txt").write_text("\n".join(log) + "\n", encoding="utf-8")
         pack_error = None
+        pack_started = time.perf_counter()
         if pack:
             try:
                 _stamp(log, _build_pack(tmp))
@@ -625,10 +630,13 @@ def finish_study(prepared: PreparedStudy, resample_result, out, *, quiet: bool =
                 shutil.rmtree(tmp / "pack", ignore_errors=True)
                 _stamp(log, f"pack failed ({exc.__class__.__name__}): "
                             f"{' '.join(str(exc).split())}; the run folder is complete without it")
+        # wall_time_seconds (computing) was written before the pack, which prints it;
+        # the pack's own time is added beside it so the two files never disagree
         manifest = json.loads((tmp / "manifest.json").read_text())
-        manifest["wall_time_seconds"] = round(time.perf_counter() - started, 3)
+        manifest["pack_wall_time_seconds"] = (round(time.perf_counter() - pack_started, 3)
+                                              if pack else None)
         _write_json(tmp / "manifest.json", manifest)
-        _stamp(log, f"done in {manifest['wall_time_seconds']:.1f} s")
+        _stamp(log, f"done in {time.perf_counter() - started:.1f} s")
         (tmp / "log.txt").write_text("\n".join(log) + "\n", encoding="utf-8")
         _move_into_place(tmp, out)
     except BaseException:

@@ -238,3 +238,28 @@ def test_a_failing_pack_keeps_the_results(study, tmp_path, monkeypatch):
         finish_study(prepare_study(load_study(study), draws=50), None, out, pack=True)
     assert (out / "summary.json").is_file() and not (out / "pack").exists()
     assert "pack failed" in (out / "log.txt").read_text()
+
+
+def test_a_history_too_short_for_the_backtest_skips_it_and_the_pack_says_why(tmp_path):
+    _write_history(tmp_path, periods=70)
+    f = tmp_path / "study.toml"
+    f.write_text(STUDY.replace("draws = 200", "draws = 100")
+                 + "\n[backtest]\nwindow = 68\nbootstrap_resamples = 50\n")
+    out = tmp_path / "run"
+    assert main(["study", str(f), "--out", str(out), "--quiet"]) == 0
+    s = json.loads((out / "summary.json").read_text())
+    reason = s["backtest"]["skipped"]
+    assert "70 periods" in reason and "window of 68" in reason
+    assert all("backtest" not in r or r["backtest"] is None for r in s["rules"].values())
+    html = (out / "pack" / "report.html").read_text()
+    assert "window of 68" in html
+
+
+def test_backtest_settings_in_the_summary_carry_the_engine_defaults(study, tmp_path):
+    out = tmp_path / "run"
+    assert main(["study", str(study), "--out", str(out), "--no-pack", "--quiet",
+                 "--draws", "100"]) == 0
+    bt = json.loads((out / "summary.json").read_text())["backtest"]
+    # left unset in the study file, filled in by the backtest engine's own rule
+    assert isinstance(bt["rolling_sharpe_window"], int) and bt["rolling_sharpe_window"] > 1
+    assert isinstance(bt["bootstrap_block_length"], int) and bt["bootstrap_block_length"] >= 1
