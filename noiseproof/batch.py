@@ -1586,6 +1586,7 @@ def _scan_store(st: _Study, engine: Engine, log: BatchLog, progress: _Progress) 
     removed = st.store.clean_temporaries()
     if removed:
         log.write(f"study {st.name}: removed {removed} temporary file(s) left mid-write")
+    foreign = []
     for i in st.store.present():
         if i >= st.n_blocks:
             _reject(st, i, f"block {i} is beyond this study's {st.n_blocks} blocks", log, progress)
@@ -1593,21 +1594,35 @@ def _scan_store(st: _Study, engine: Engine, log: BatchLog, progress: _Progress) 
         try:
             engine.from_bytes(st.store.read(i))
         except CorruptBlockError as exc:
+            if str(exc) == "written for other settings":
+                foreign.append(i)
+                continue
             _reject(st, i, str(exc), log, progress)
             continue
         except Exception as exc:
             _reject(st, i, f"engine check failed ({_one_line(exc)})", log, progress)
             continue
         st.on_disk.add(i)
+    if foreign:  # one message for the lot: the study's settings, data or code changed
+        for i in foreign:
+            _reject(st, i, "written for other settings", log, progress, quiet=True)
+        msg = (f"study {st.name}: {len(foreign)} block(s) were written for other settings (the "
+               f"study, its data or the code changed since); moved to blocks/rejected/, "
+               f"recomputing")
+        log.write(msg)
+        progress.say(f"noiseproof: {msg}")
 
 
-def _reject(st: _Study, i: int, reason: str, log: BatchLog, progress: _Progress) -> None:
+def _reject(st: _Study, i: int, reason: str, log: BatchLog, progress: _Progress,
+            quiet: bool = False) -> None:
     try:
         dest = st.store.reject(i, reason)
     except OSError as exc:
         raise _output_error(exc, st.store.path(i)) from None
     st.rejected += 1
     st.on_disk.discard(i)
+    if quiet:
+        return
     msg = (f"study {st.name}: block {i} rejected ({reason}); moved to "
            f"{dest.relative_to(st.folder)}, recomputing")
     log.write(msg)

@@ -16,11 +16,11 @@ Units: per-period decimals throughout.
 from .cla import Frontier, efficient_frontier
 from .constraints import Constraints, make_constraints
 from .kkt import KKTResiduals, kkt_residuals
-from .rules import RULE_PARAMS, RULE_TYPES, Allocation, Rule, make_rule
+from .rules import RULE_PARAMS, RULE_TYPES, TE_TYPES, Allocation, Rule, make_rule, tracking_error
 
 __all__ = [
     "Constraints", "make_constraints",
-    "Rule", "Allocation", "make_rule", "RULE_TYPES", "RULE_PARAMS",
+    "Rule", "Allocation", "make_rule", "RULE_TYPES", "RULE_PARAMS", "TE_TYPES", "tracking_error",
     "Frontier", "efficient_frontier",
     "KKTResiduals", "kkt_residuals",
 ]

@@ -29,6 +29,25 @@ Rule types (``RULE_TYPES``) and what they solve
     ``min w'Sigma w`` s.t. ``w'mu >= target`` (with cash: ``w'(mu - rf) + rf >= target``).
 ``target-volatility``
     ``max w'mu`` s.t. ``sqrt(w'Sigma w) <= target`` (with cash: ``w'(mu - rf)``).
+``fixed``
+    The weights given in the study (``weights = {asset = weight}``; assets left out hold
+    0), checked once against the budget, long-only, bounds and groups; they do not depend
+    on the inputs (like 1/N). A study's current (policy) allocation is usually one.
+
+Tracking error against a policy
+-------------------------------
+``min-variance``, ``mean-variance`` and ``target-return`` accept ``max_tracking_error``
+(``tracking_error_units`` = ``"per period"``, the default, or ``"annualised"``): the
+second-order cone constraint ``(w - p)'Sigma (w - p) <= te^2`` with ``p`` the policy's
+weights. It is solved exactly through its Lagrangian: for a multiplier ``eta >= 0`` the
+problem with ``eta/2 (w - p)'Sigma (w - p)`` added to the objective is a QP the
+active-set solver handles; writing ``t = eta / (1 + eta)`` the QP's linear term is
+``(1 - t) c + t Sigma p`` and its solution is piecewise affine in ``t`` with a tracking
+error that does not increase in ``t``. A bracketing search in ``t`` that steps to the
+exact root of the quadratic ``TE(t)^2 = te^2`` along the affine piece between its
+brackets stops when the constraint binds to ``1e-10`` relative (usually after a few
+QPs). ``t = 1`` minimises the tracking error itself: a limit below that minimum is
+infeasible, and a limit of 0 returns the policy when the rule's constraints allow it.
 """
 from __future__ import annotations
 
@@ -44,7 +63,8 @@ from . import _kernels as K
 from .constraints import Constraints, _greedy_fill, make_constraints
 from .kkt import KKTResiduals, kkt_residuals
 
-__all__ = ["RULE_TYPES", "Rule", "Allocation", "make_rule", "KKT_TOLERANCE", "COND_LIMIT"]
+__all__ = ["RULE_TYPES", "Rule", "Allocation", "make_rule", "KKT_TOLERANCE", "COND_LIMIT",
+           "tracking_error", "TE_TYPES"]
 
 #: Largest KKT residual a solve may report (scaled by max(1, |gradient terms|)).
 KKT_TOLERANCE = 1e-8
@@ -56,16 +76,25 @@ _SHRINK_HINT = ("use a shrinkage covariance estimator (e.g. 'ledoit-wolf-identit
                 "or constrain the weights (long-only or bounds)")
 
 _COMMON = ("long_only", "budget", "bounds", "groups")
+_TE = ("max_tracking_error", "tracking_error_units")
 RULE_PARAMS = {
     "equal-weight": (),
-    "min-variance": _COMMON,
-    "mean-variance": _COMMON + ("risk_aversion", "risk_free"),
-    "max-sharpe": _COMMON + ("risk_free",),
-    "target-return": _COMMON + ("target", "risk_free"),
-    "target-volatility": _COMMON + ("target", "risk_free"),
+    "min-variance": _COMMON + _TE,
+    "mean-variance": _COMMON + ("risk_aversion", "risk_free") + _TE,
+    "max-sharpe": _COMMON + ("risk_free",) + _TE,
+    "target-return": _COMMON + ("target", "risk_free") + _TE,
+    "target-volatility": _COMMON + ("target", "risk_free") + _TE,
     "inverse-volatility": (),
     "equal-risk-contribution": (),
+    "fixed": ("weights",) + _COMMON,
 }
+#: Rule types that take ``max_tracking_error`` (a QP with Hessian Sigma).
+TE_TYPES = ("min-variance", "mean-variance", "target-return")
+#: Accepted spellings of ``tracking_error_units``.
+TE_UNITS = {"per period": "per period", "per-period": "per period", "period": "per period",
+            "annualised": "annualised", "annualized": "annualised", "annual": "annualised"}
+#: Relative accuracy to which a binding tracking-error limit is met (on TE^2).
+TE_RTOL = 1e-10
 RULE_TYPES = tuple(RULE_PARAMS)
 _QP_TYPES = ("min-variance", "mean-variance", "max-sharpe", "target-return")
 
@@ -122,6 +151,9 @@ class Rule:
     risk_aversion: Optional[float] = None
     risk_free: float = 0.0
     target: Optional[float] = None
+    fixed_weights: Optional[np.ndarray] = None
+    policy_weights: Optional[np.ndarray] = None
+    max_tracking_error: Optional[float] = None
 
     @property
     def needs_mean(self) -> bool:
@@ -129,7 +161,7 @@ class Rule:
 
     @property
     def needs_covariance(self) -> bool:
-        return self.type != "equal-weight"
+        return self.type not in ("equal-weight", "fixed")
 
     @property
     def assets(self) -> tuple:
@@ -207,7 +239,17 @@ class Rule:
         if self.type not in _QP_TYPES:
             raise SettingsError(f"rule type '{self.type}' is not an optimisation; nothing to check")
         H, c, A, lo, hi, lb, ub = self._qp_problem(mu[None, :], S[None])
-        return kkt_residuals(w, H[0], c[0], A[0], lo[0], hi[0], lb, ub)
+        if self.max_tracking_error is None:
+            return kkt_residuals(w, H[0], c[0], A[0], lo[0], hi[0], lb, ub)
+        # the cone constraint (w - p)'S(w - p) <= te^2 enters with its own multiplier
+        # when it binds (its gradient is S (w - p)); its violation counts as primal
+        d = w - self.policy_weights
+        te2 = self.max_tracking_error ** 2
+        gap = te2 - float(d @ S @ d)
+        extra = [S @ d] if abs(gap) <= 1e-8 * max(te2, 1e-300) else []
+        r = kkt_residuals(w, H[0], c[0], A[0], lo[0], hi[0], lb, ub, extra_gradients=extra)
+        return KKTResiduals(r.stationarity, max(r.primal, -gap / max(te2, 1e-300)), r.dual,
+                            r.complementarity)
 
     # ------------------------------------------------------------------ validation
     def _iv(self, mean, cov, batch: bool):
@@ -270,6 +312,8 @@ class Rule:
         D = means.shape[0]
         if t == "equal-weight":
             return np.full((D, n), 1.0 / n), None, None
+        if t == "fixed":
+            return np.repeat(self.fixed_weights[None, :], D, axis=0), None, None
         if t == "inverse-volatility":
             vol = np.sqrt(np.diagonal(covs, axis1=1, axis2=2))
             if np.any(vol <= 0):
@@ -283,6 +327,8 @@ class Rule:
             return self._erc(covs, single)
         if t == "target-volatility":
             return self._target_vol(means, covs, single)
+        if self.max_tracking_error is not None:
+            return self._qp_te(means, covs, single)
         return self._qp(means, covs, single)
 
     # ------------------------------------------------------------------ QP rules
@@ -485,12 +531,11 @@ class Rule:
             W.append(w)
         return np.array(vals), np.array(W)
 
-    def _qp(self, means, covs, single: bool):
-        cons = self.constraints
-        self._check_conditioning(covs, single)     # only when the weights are unbounded
-        H, c, A, lo, hi, lb, ub = self._qp_problem(means, covs)
-        x0 = self._starts(means, covs, H, c, A, lo, hi, lb, ub, single)
-        X, Z, NU, status = _run_qp(H, c, A, lo, hi, lb, ub, x0,
+    def _qp_core(self, H, c, A, lo, hi, lb, ub, x0, single: bool, warm: bool = True):
+        """Solve the D QPs from feasible starts ``x0``; retry slow ones cold; check KKT.
+
+        Returns (X, Z, NU, kkt)."""
+        X, Z, NU, status = _run_qp(H, c, A, lo, hi, lb, ub, x0, warm=warm,
                                    rescale_row=0 if self.type == "max-sharpe" else -1)
         retry = np.flatnonzero(status == K.MAXITER)
         if retry.size:   # cold start with a ten times larger iteration limit, one by one
@@ -502,6 +547,14 @@ class Rule:
         self._raise_status(status, single)
         kkt = _kkt_batch(H, c, A, lo, hi, lb, ub, X, Z, NU)
         self._raise_kkt(kkt, single)
+        return X, Z, NU, kkt
+
+    def _qp(self, means, covs, single: bool):
+        cons = self.constraints
+        self._check_conditioning(covs, single)     # only when the weights are unbounded
+        H, c, A, lo, hi, lb, ub = self._qp_problem(means, covs)
+        x0 = self._starts(means, covs, H, c, A, lo, hi, lb, ub, single)
+        X, Z, NU, kkt = self._qp_core(H, c, A, lo, hi, lb, ub, x0, single)
         if self.type == "max-sharpe":
             kappa = X.sum(axis=1)
             bad = kappa <= 1e-12 * np.max(np.abs(X), axis=1)
@@ -535,6 +588,116 @@ class Rule:
                 f"rule '{self.name}' ({self.type}): the solution{'' if single else f' of draw {d}'} "
                 f"fails the optimality check (KKT residual {kkt[d]:.3g} > {KKT_TOLERANCE:g}), "
                 f"which happens with a numerically singular covariance; {_SHRINK_HINT}")
+
+    # ------------------------------------------------------------------ tracking error
+    def _qp_te(self, means, covs, single: bool):
+        """QP rules with ``(w - p)'Sigma (w - p) <= te^2`` (see the module docstring).
+
+        For each draw: solve at ``t = 0`` (the rule without the limit); where the limit
+        is slack that is the answer. Else solve at ``t = 1`` (least tracking error under
+        the rule's constraints; above ``te`` means infeasible) and search ``t`` in the
+        bracket: step to the root of ``TE^2 = te^2`` along the affine path between the
+        bracket's two solutions (exact when they share an active set), bisect when that
+        does not shrink the bracket enough.
+        """
+        self._check_conditioning(covs, single)
+        p = self.policy_weights
+        te2 = float(self.max_tracking_error) ** 2
+        H, c, A, lo, hi, lb, ub = self._qp_problem(means, covs)
+        D, n = c.shape
+        A = np.ascontiguousarray(np.broadcast_to(A, A.shape))
+        lo = np.ascontiguousarray(lo)
+        hi = np.ascontiguousarray(hi)
+        Sp = np.einsum("dij,j->di", covs, p)
+        x0 = self._starts(means, covs, H, c, A, lo, hi, lb, ub, single)
+        X, Z, NU, kkt = self._qp_core(H, c, A, lo, hi, lb, ub, x0, single)
+
+        def te2_of(Xs, idx):
+            dd = Xs - p
+            return np.maximum(np.einsum("dn,dn->d", np.einsum("dij,dj->di", covs[idx], dd), dd),
+                              0.0)
+
+        def solve(idx, t, start):
+            ct = (1.0 - t)[:, None] * c[idx] + t[:, None] * Sp[idx]
+            return self._qp_core(H[idx], ct, A[idx], lo[idx], hi[idx], lb, ub,
+                                 np.ascontiguousarray(start), single, warm=False)
+
+        tol = TE_RTOL * max(te2, 1e-300)
+        f0 = te2_of(X, np.arange(D)) - te2
+        T = np.zeros(D)
+        act = np.flatnonzero(f0 > tol)
+        if act.size:
+            one = np.ones(act.size)
+            X1, Z1, N1, k1 = solve(act, one, X[act])
+            f1 = te2_of(X1, act) - te2
+            bad = f1 > tol
+            if np.any(bad):
+                j = int(np.flatnonzero(bad)[0])
+                d = int(act[j])
+                least = math.sqrt(f1[j] + te2)
+                raise InfeasibleError(
+                    f"rule '{self.name}': max_tracking_error {self.max_tracking_error:.6g} per "
+                    f"period is below the least tracking error {least:.6g} that the rule's "
+                    f"constraints allow against the policy" + ("" if single else f" (draw {d})")
+                    + "; loosen the limit or the rule's constraints")
+            # bracket [t_lo, t_hi]: TE too large at t_lo, within the limit at t_hi
+            t_lo, t_hi = np.zeros(act.size), one.copy()
+            f_lo, f_hi = f0[act], f1
+            X_lo, X_hi = X[act].copy(), X1
+            Z_hi, N_hi, k_hi = Z1, N1, k1
+            done = f_hi >= -tol             # binds at t = 1 (a limit of 0, or exactly the least)
+            covs_a = covs[act]
+            for it in range(200):
+                todo = np.flatnonzero(~done)
+                if todo.size == 0:
+                    break
+                d0 = X_lo[todo] - p
+                dd = X_hi[todo] - X_lo[todo]
+                Sdd = np.einsum("dij,dj->di", covs_a[todo], dd)
+                qa = np.einsum("dn,dn->d", dd, Sdd)
+                qb = 2.0 * np.einsum("dn,dn->d", d0, Sdd)
+                qc = f_lo[todo]
+                s = _root_01(qa, qb, qc)
+                width = t_hi[todo] - t_lo[todo]
+                if it % 3 == 2:             # safeguard: a bisection every third step
+                    s = np.full(todo.size, 0.5)
+                s = np.clip(s, 1e-3, 1.0 - 1e-3) if it >= 12 else np.clip(s, 0.0, 1.0)
+                tn = t_lo[todo] + s * width
+                Xn, Zn, Nn, kn = solve(act[todo], tn, X_hi[todo])
+                fn = te2_of(Xn, act[todo]) - te2
+                hit = np.abs(fn) <= tol
+                tiny = width <= 1e-15
+                lo_m = fn > tol                      # still above the limit: new lower end
+                hi_m = ~lo_m                         # within the limit: new upper end
+                g = todo[hi_m]
+                t_hi[g], f_hi[g], X_hi[g] = tn[hi_m], fn[hi_m], Xn[hi_m]
+                Z_hi[g], N_hi[g], k_hi[g] = Zn[hi_m], Nn[hi_m], kn[hi_m]
+                g = todo[lo_m]
+                t_lo[g], f_lo[g], X_lo[g] = tn[lo_m], fn[lo_m], Xn[lo_m]
+                done[todo[hit | tiny]] = True
+            if not np.all(done):   # pragma: no cover - the bracket always shrinks
+                raise RuntimeError(f"rule '{self.name}': tracking-error search did not converge")
+            X[act], Z[act], NU[act], kkt[act], T[act] = X_hi, Z_hi, N_hi, k_hi, t_hi
+        # certificate of the cone constraint: primal feasibility (TE^2 <= te^2 within the
+        # tolerance) and complementary slackness eta (te^2 - TE^2) with eta = t / (1 - t)
+        f = te2_of(X, np.arange(D)) - te2
+        with np.errstate(divide="ignore", invalid="ignore"):
+            eta = np.where(T < 1.0, T / (1.0 - T), np.inf)
+        comp = np.where(T > 0, np.where(np.isfinite(eta), eta * np.abs(f), np.abs(f)), 0.0)
+        cone = np.maximum(np.maximum(f, 0.0), comp) / max(te2, 1e-300)
+        bad = cone > 1e-8
+        if np.any(bad):   # pragma: no cover - guarded by the search's stopping rule
+            d = int(np.flatnonzero(bad)[0])
+            raise RuntimeError(f"rule '{self.name}': tracking-error limit not met (draw {d}, "
+                               f"relative residual {cone[d]:.3g})")
+        return _clean(X, self.constraints), np.maximum(kkt, cone), None
+
+    def tracking_multiplier(self, mean, covariance) -> float:
+        """The multiplier ``eta >= 0`` of the tracking-error constraint at the solution
+        (0 when the limit is slack; inf when it is met only at its least value)."""
+        means, covs = self._iv(mean, covariance, batch=False)
+        w = self._solve(means, covs, single=True)[0][0]
+        return _te_multiplier(self, means[0], covs[0], w)
 
     # ------------------------------------------------------------------ target volatility
     def _target_vol(self, means, covs, single: bool):
@@ -618,6 +781,82 @@ def _run_qp(H, c, A, lo, hi, lb, ub, x0, rescale_row=-1, warm=True,
     return X, Z, NU, status
 
 
+def _root_01(qa, qb, qc):
+    """Root in [0, 1] of ``qa s^2 + qb s + qc`` with ``qa >= 0``, ``qc > 0 >= q(1)``
+    (the smaller root; written to avoid cancellation). Shapes (D,)."""
+    disc = np.maximum(qb * qb - 4.0 * qa * qc, 0.0)
+    den = -qb + np.sqrt(disc)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        s = np.where(den > 0, 2.0 * qc / np.where(den > 0, den, 1.0), 0.5)
+    return np.where(np.isfinite(s), s, 0.5)
+
+
+def tracking_error(weights, policy, covariance) -> np.ndarray:
+    """Tracking error ``sqrt((w - p)' Sigma (w - p))`` of weights against a policy.
+
+    Parameters
+    ----------
+    weights : ndarray, shape (N,) or (D, N)
+        Risky-asset weights (any cash earns the risk-free rate and adds no risk).
+    policy : ndarray, shape (N,) or (D, N)
+        The policy's risky-asset weights.
+    covariance : ndarray, shape (N, N)
+        Per-period covariance (of excess returns).
+
+    Returns
+    -------
+    float or ndarray, shape (D,)
+        Per period (multiply by ``sqrt(periods per year)`` to annualise).
+    """
+    d = np.asarray(weights, dtype=float) - np.asarray(policy, dtype=float)
+    S = np.asarray(covariance, dtype=float)
+    v = np.einsum("...i,ij,...j->...", d, S, d)
+    out = np.sqrt(np.maximum(v, 0.0))
+    return float(out) if out.ndim == 0 else out
+
+
+def _te_multiplier(rule, mu, S, w) -> float:
+    """Multiplier of the tracking-error constraint at ``w``, estimated independently of
+    the solver: non-negative least squares on the KKT stationarity condition with the
+    active bounds and rows plus the cone's gradient ``Sigma (w - p)``; 0 when slack."""
+    from scipy.optimize import nnls
+
+    p = rule.policy_weights
+    te2 = rule.max_tracking_error ** 2
+    d = w - p
+    if float(d @ S @ d) < te2 * (1.0 - 1e-8):
+        return 0.0
+    H, c, A, lo, hi, lb, ub = rule._qp_problem(mu[None, :], S[None])
+    H, c, A, lo, hi = H[0], c[0], np.asarray(A[0]), np.asarray(lo[0]), np.asarray(hi[0])
+    grad = H @ w - c
+    cols, signs_free = [], []
+    n = w.size
+    tol = 1e-9
+    for i in range(n):
+        if np.isfinite(lb[i]) and w[i] - lb[i] <= tol:
+            e = np.zeros(n)
+            e[i] = -1.0
+            cols.append(e)
+        if np.isfinite(ub[i]) and ub[i] - w[i] <= tol:
+            e = np.zeros(n)
+            e[i] = 1.0
+            cols.append(e)
+    ax = A @ w
+    for k in range(A.shape[0]):
+        if lo[k] == hi[k]:
+            cols.append(A[k])
+            cols.append(-A[k])
+            continue
+        if np.isfinite(lo[k]) and ax[k] - lo[k] <= tol:
+            cols.append(-A[k])
+        if np.isfinite(hi[k]) and hi[k] - ax[k] <= tol:
+            cols.append(A[k])
+    cols.append(S @ d)
+    M = np.array(cols).T
+    lam, _ = nnls(M, -grad, maxiter=50 * M.shape[1] + 100)
+    return float(lam[-1])
+
+
 def _kkt_batch(H, c, A, lo, hi, lb, ub, X, Z, NU):
     """Largest KKT residual per problem (D,), scaled by max(1, |c|, |H x|) (numba)."""
     out = np.empty(c.shape[0])
@@ -686,7 +925,8 @@ def _num(v, key, name, *, positive=False, nonneg=False):
     return v
 
 
-def make_rule(name: str, type: str, params: Optional[Mapping] = None, assets=None) -> Rule:
+def make_rule(name: str, type: str, params: Optional[Mapping] = None, assets=None, *,
+              policy_weights=None, periods_per_year=None) -> Rule:
     """Build a rule from its type and parameters (the one registry of rule types).
 
     Parameters
@@ -704,6 +944,16 @@ def make_rule(name: str, type: str, params: Optional[Mapping] = None, assets=Non
         in ``RULE_PARAMS``.
     assets : sequence of str or int
         Asset names (or their number).
+    policy_weights : ndarray, shape (N,), optional
+        The policy's risky-asset weights; needed by ``max_tracking_error``.
+    periods_per_year : float, optional
+        Needed by ``tracking_error_units = "annualised"`` (the limit is divided by
+        ``sqrt(periods_per_year)``).
+
+    ``fixed`` takes ``weights`` ({asset: weight}; assets left out hold 0). The
+    ``min-variance``, ``mean-variance`` and ``target-return`` types take
+    ``max_tracking_error`` (>= 0) and ``tracking_error_units`` (``"per period"`` by
+    default, or ``"annualised"``).
 
     Returns
     -------
@@ -753,4 +1003,74 @@ def make_rule(name: str, type: str, params: Optional[Mapping] = None, assets=Non
         assets = int(assets)
     cons = make_constraints(assets, long_only=long_only, budget=budget,
                             bounds=params.get("bounds"), groups=params.get("groups"))
-    return Rule(str(name), type, cons, params, risk_aversion, risk_free, target)
+    fixed = _fixed_weights(name, params, cons) if type == "fixed" else None
+    te, policy = None, None
+    if "max_tracking_error" in params:
+        te, policy = _tracking_limit(name, type, params, cons, policy_weights, periods_per_year)
+    elif "tracking_error_units" in params:
+        raise SettingsError(f"rule '{name}': 'tracking_error_units' is given without "
+                            "'max_tracking_error'")
+    return Rule(str(name), type, cons, params, risk_aversion, risk_free, target, fixed,
+                policy, te)
+
+
+def _fixed_weights(name, params, cons: Constraints) -> np.ndarray:
+    """Validate a fixed rule's ``weights`` against its constraints; (N,) array."""
+    raw = params.get("weights")
+    if not isinstance(raw, Mapping) or not raw:
+        raise SettingsError(f"rule '{name}' (fixed) needs 'weights' = {{asset = weight, ...}}")
+    assets = cons.assets
+    w = np.zeros(len(assets))
+    for key, value in raw.items():
+        if str(key) not in assets:
+            raise SettingsError(f"rule '{name}': 'weights' names unknown asset '{key}' "
+                                f"(assets: {', '.join(map(str, assets))})")
+        w[assets.index(str(key))] = _num(value, f"weights.{key}", name)
+    total = float(w.sum())
+    tol = 1e-9
+    if cons.budget == "full" and abs(total - 1.0) > tol:
+        raise SettingsError(f"rule '{name}': 'weights' sum to {total:.10g}, not 1; give all of "
+                            f"the allocation, or set budget = \"cash\" to hold the remaining "
+                            f"{1.0 - total:.10g} in cash")
+    for i, a in enumerate(assets):
+        if cons.long_only and w[i] < 0:
+            raise SettingsError(f"rule '{name}': weight of '{a}' is {w[i]:g}, negative in a "
+                                f"long-only rule (set long_only = false to allow it)")
+        if w[i] < cons.lower[i] - tol or w[i] > cons.upper[i] + tol:
+            raise SettingsError(f"rule '{name}': weight of '{a}' is {w[i]:g}, outside its "
+                                f"bounds [{cons.lower[i]:g}, {cons.upper[i]:g}]")
+    if cons.budget == "cash" and cons.long_only and total > 1.0 + tol:
+        raise SettingsError(f"rule '{name}': 'weights' sum to {total:.10g} > 1, a negative cash "
+                            f"sleeve (borrowing) in a long-only rule")
+    for g, gname in enumerate(cons.group_names):
+        x = float(cons.group_matrix[g] @ w)
+        if x < cons.group_lower[g] - tol or x > cons.group_upper[g] + tol:
+            raise SettingsError(f"rule '{name}': group '{gname}' holds {x:g}, outside its "
+                                f"bounds [{cons.group_lower[g]:g}, {cons.group_upper[g]:g}]")
+    return w
+
+
+def _tracking_limit(name, type, params, cons, policy_weights, periods_per_year):
+    """(limit per period, policy weights (N,)) of ``max_tracking_error``."""
+    if type not in TE_TYPES:
+        raise SettingsError(f"rule '{name}': max_tracking_error is available for "
+                            f"{', '.join(TE_TYPES)} rules, not '{type}'")
+    te = _num(params["max_tracking_error"], "max_tracking_error", name, nonneg=True)
+    units = params.get("tracking_error_units", "per period")
+    if not isinstance(units, str) or units.strip().lower() not in TE_UNITS:
+        raise SettingsError(f"rule '{name}': tracking_error_units must be \"per period\" or "
+                            f"\"annualised\", got {units!r}")
+    if TE_UNITS[units.strip().lower()] == "annualised":
+        if periods_per_year is None or not periods_per_year > 0:
+            raise SettingsError(f"rule '{name}': an annualised max_tracking_error needs the "
+                                f"data's periods per year")
+        te = te / math.sqrt(float(periods_per_year))
+    if policy_weights is None:
+        raise SettingsError(f"rule '{name}': max_tracking_error is measured against the "
+                            f"policy; name a rule of type 'fixed' with the top-level key "
+                            f"policy = \"...\"")
+    p = np.asarray(policy_weights, dtype=float)
+    if p.shape != (cons.n_assets,) or not np.all(np.isfinite(p)):
+        raise SettingsError(f"rule '{name}': policy weights must be {cons.n_assets} finite "
+                            f"numbers, got shape {p.shape}")
+    return te, p.copy()

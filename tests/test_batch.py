@@ -818,3 +818,45 @@ def test_set_assigns_quoted_keys_as_given_and_merges_sub_tables(plan_dir):
     assert [s.name for s in plan.studies] == ["draws=10__bounds=empty", "draws=10__bounds=A-0.0-0.5",
                                              "draws=20__bounds=empty", "draws=20__bounds=A-0.0-0.5"]
     assert study_settings(plan, plan.studies[1]).rules[0].params["bounds"] == {"A": [0.0, 0.5]}
+
+
+def test_sigterm_stops_cleanly_with_status_130_and_resume_finishes(plan_dir, tmp_path):
+    """A job scheduler's SIGTERM: lock released, blocks kept, --resume completes."""
+    out = tmp_path / "out"
+    cmd = [sys.executable, "-m", "noiseproof", "batch", str(plan_dir / "plan.toml"),
+           "--out", str(out), "--workers", "1"]
+    env = _cli_env(NOISEPROOF_BATCH_ENGINE="test_batch:STANDIN",
+                   NOISEPROOF_BATCH_BLOCK_DELAY="0.1")
+    proc = subprocess.Popen(cmd, env=env, stderr=subprocess.PIPE, text=True)
+    try:
+        deadline = time.time() + 60
+        while len(list(out.glob("studies/*/blocks/block-*.bin"))) < 3:
+            assert proc.poll() is None and time.time() < deadline
+            time.sleep(0.02)
+        proc.send_signal(signal.SIGTERM)
+        _, err = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    assert proc.returncode == 130 and "rerun with --resume" in err
+    assert not (out / "batch.lock").exists()
+    assert "batch interrupted" in (out / "batch.log").read_text()
+    r = subprocess.run(cmd + ["--resume", "--quiet"], env=_cli_env(
+        NOISEPROOF_BATCH_ENGINE="test_batch:STANDIN"), capture_output=True, text=True, timeout=120)
+    assert r.returncode == 0 and "took over" not in r.stderr
+    run_batch(batch.load_plan(plan_dir / "plan.toml"), tmp_path / "clean", engine=STANDIN,
+              quiet=True)
+    assert _summaries(out) == _summaries(tmp_path / "clean")
+
+
+def test_blocks_of_changed_settings_are_reported_once(plan_dir, tmp_path):
+    plan = _plan(plan_dir, 'study = "study.toml"\n')
+    out = tmp_path / "out"
+    run_batch(plan, out, engine=STANDIN, quiet=True)
+    (plan_dir / "study.toml").write_text(STUDY.replace("seed = 7", "seed = 9"))
+    run_batch(batch.load_plan(plan_dir / "plan.toml"), out, engine=STANDIN, quiet=True,
+              resume=True)
+    log = (out / "batch.log").read_text()
+    assert log.count("6 block(s) were written for other settings") == 1
+    assert "block 0 rejected" not in log

@@ -82,14 +82,14 @@ def test_real_engine_on_dask_matches_single_runs_even_when_a_worker_dies(referen
     import dataclasses
     import functools
 
-    from test_batch_engine import dying_run_block, numbers
+    from test_batch_engine import differences, dying_run_block, numbers
 
     _, client = cluster
     inputs, expected = reference
     plan = batch.load_plan(inputs / "plan.toml")
     ex = DaskExecutor(client=client)
     res = run_batch(plan, tmp_path / "dask", quiet=True, pack=False, executor=ex)
-    assert res.exit_status == 0 and numbers(tmp_path / "dask") == expected
+    assert res.exit_status == 0 and differences(numbers(tmp_path / "dask"), expected) == []
     marker = tmp_path / "died"
     engine = dataclasses.replace(batch.default_engine(),
                                  run_block=functools.partial(dying_run_block, str(marker), 2))
@@ -98,7 +98,7 @@ def test_real_engine_on_dask_matches_single_runs_even_when_a_worker_dies(referen
     ex.close()
     assert res.exit_status == 0, [s.error for s in res.studies]
     assert marker.exists()
-    assert numbers(tmp_path / "dask-death") == expected
+    assert differences(numbers(tmp_path / "dask-death"), expected) == []
     client.wait_for_workers(2, timeout=30)
 
 

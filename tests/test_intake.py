@@ -290,11 +290,12 @@ from hypothesis.extra.numpy import arrays  # noqa: E402
 
 @settings(max_examples=25, deadline=None)
 @given(st.integers(3, 30).flatmap(lambda t: st.integers(1, 4).flatmap(
-    lambda n: arrays(np.float64, (t, n), elements=st.floats(-0.5, 0.5, allow_nan=False, width=32)))),
+    lambda n: arrays(np.float64, (t, n), elements=st.floats(-0.375, 0.375, allow_nan=False, width=32)))),
     st.sampled_from(["ME", "W-FRI", "QE", "B"]))
 def test_round_trip_property(tmp_path_factory, values, freq):
     spread = values.max(axis=0) - values.min(axis=0)
     assume((spread >= 1e-6).all())               # a constant column is refused (tested elsewhere)
+    # (values stay below the 50%-a-period median that intake refuses as percentages typed as returns)
     df = pd.DataFrame(values, index=pd.date_range("2003-01-01", periods=len(values), freq=freq),
                       columns=[f"A{k}" for k in range(values.shape[1])])
     p = tmp_path_factory.mktemp("rt") / "r.csv"
