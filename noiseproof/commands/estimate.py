@@ -8,7 +8,7 @@ import sys
 import textwrap
 
 from estimators import COVARIANCE_ESTIMATORS, MEAN_ESTIMATORS, estimate
-from estimators.core import PERIODS_PER_YEAR
+from ._common import add_data_arguments, add_estimator_arguments, estimator_params, load_history_from
 
 HELP = "show the estimated mean and covariance (annualised table, or per-period JSON)"
 
@@ -54,54 +54,11 @@ def register(sub) -> None:
         "estimate", help=HELP, description=DESCRIPTION, epilog=EPILOG,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("data", metavar="DATA",
-                   help="history file: CSV or Parquet, a date column and one column per asset")
-    p.add_argument("--kind", choices=("returns", "prices"),
-                   help="what the cells hold (detected when unambiguous)")
-    p.add_argument("--frequency", choices=tuple(PERIODS_PER_YEAR),
-                   help="data frequency (default: inferred from the dates)")
-    p.add_argument("--date-column", metavar="NAME", help="name of the date column")
-    p.add_argument("--missing", choices=("raise", "drop-rows"), default="raise",
-                   help="missing cells: an error (default) or drop those rows")
-    p.add_argument("--mean", default="sample", metavar="NAME",
-                   help="mean estimator (default: sample; list below)")
-    p.add_argument("--covariance", default="sample", metavar="NAME",
-                   help="covariance estimator (default: sample; list below)")
-    g = p.add_mutually_exclusive_group()
-    g.add_argument("--half-life", type=float, metavar="H",
-                   help="half-life of the ewma covariance, in periods (decay = 0.5**(1/H))")
-    g.add_argument("--decay", type=float, metavar="L",
-                   help="decay factor of the ewma covariance, 0 < L <= 1 "
-                        "(0.94 for daily data is common practice)")
+    add_data_arguments(p)
+    add_estimator_arguments(p)
     p.add_argument("--json", action="store_true",
                    help="print per-period figures as JSON instead of the table")
     p.set_defaults(func=run)
-
-
-def _params(args):
-    from estimators.core import SettingsError
-
-    for flag, value in (("--mean", args.mean), ("--covariance", args.covariance)):
-        if value == "given":
-            raise SettingsError(
-                f"{flag} given: given moments come from an assumptions file in a study, "
-                "not from this command"
-            )
-    ewma_flags = [f for f, v in (("--half-life", args.half_life), ("--decay", args.decay))
-                  if v is not None]
-    if args.covariance == "ewma" and not ewma_flags:
-        raise SettingsError(
-            "--covariance ewma needs --half-life H (in periods) or --decay L; a decay of "
-            "0.94 for daily data is common practice"
-        )
-    if args.covariance != "ewma" and ewma_flags:
-        raise SettingsError(f"{ewma_flags[0]} applies only to --covariance ewma")
-    params = {}
-    if args.half_life is not None:
-        params["ewma_half_life"] = args.half_life
-    if args.decay is not None:
-        params["ewma_decay"] = args.decay
-    return params
 
 
 def _num(x):
@@ -114,11 +71,8 @@ def _date(d):
 
 
 def run(args) -> int:
-    from noiseproof.intake import load_history  # imported lazily: keeps --help fast
-
-    params = _params(args)  # settings errors before reading the file
-    history = load_history(args.data, kind=args.kind, frequency=args.frequency,
-                           date_column=args.date_column, missing=args.missing)
+    params = estimator_params(args)  # settings errors before reading the file
+    history = load_history_from(args)
     m = estimate(history, mean=args.mean, covariance=args.covariance,
                  params=params)
     assets = list(history.assets)

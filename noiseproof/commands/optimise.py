@@ -6,7 +6,8 @@ import json
 import math
 import sys
 
-from estimators.core import PERIODS_PER_YEAR, SettingsError
+from estimators.core import SettingsError
+from ._common import add_data_arguments, add_estimator_arguments, estimator_params, load_history_from
 
 HELP = "print the allocation a portfolio rule proposes from a history file"
 
@@ -53,25 +54,10 @@ RULE_TYPES = ("equal-weight", "min-variance", "mean-variance", "max-sharpe", "ta
 def register(sub) -> None:
     p = sub.add_parser("optimise", help=HELP, description=DESCRIPTION, epilog=EPILOG,
                        formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("data", metavar="DATA",
-                   help="history file: CSV or Parquet, a date column and one column per asset")
+    add_data_arguments(p)
     p.add_argument("--rule", required=True, choices=RULE_TYPES, metavar="TYPE",
                    help="rule type (list below)")
-    p.add_argument("--mean", default="sample", metavar="NAME",
-                   help="mean estimator (default: sample; see 'noiseproof estimate --help')")
-    p.add_argument("--covariance", default="sample", metavar="NAME",
-                   help="covariance estimator (default: sample)")
-    g = p.add_mutually_exclusive_group()
-    g.add_argument("--half-life", type=float, metavar="H",
-                   help="half-life of the ewma covariance, in periods")
-    g.add_argument("--decay", type=float, metavar="L", help="decay factor of the ewma covariance")
-    p.add_argument("--kind", choices=("returns", "prices"),
-                   help="what the cells hold (detected when unambiguous)")
-    p.add_argument("--frequency", choices=tuple(PERIODS_PER_YEAR),
-                   help="data frequency (default: inferred from the dates)")
-    p.add_argument("--date-column", metavar="NAME", help="name of the date column")
-    p.add_argument("--missing", choices=("raise", "drop-rows"), default="raise",
-                   help="missing cells: an error (default) or drop those rows")
+    add_estimator_arguments(p, see_also="see 'noiseproof estimate --help'")
     p.add_argument("--allow-short", action="store_true",
                    help="allow negative weights (default: long-only)")
     p.add_argument("--budget", choices=("full", "cash"), default="full",
@@ -159,26 +145,12 @@ def rule_params(args) -> dict:
     return params
 
 
-def _estimator_params(args):
-    params = {}
-    if args.half_life is not None:
-        params["ewma_half_life"] = args.half_life
-    if args.decay is not None:
-        params["ewma_decay"] = args.decay
-    if params and args.covariance != "ewma":
-        raise SettingsError("--half-life / --decay apply only to --covariance ewma")
-    return params
-
-
 def run(args) -> int:
     from estimators import estimate
     from optimise import make_rule
-    from noiseproof.intake import load_history  # lazily: keeps --help fast
-
     params = rule_params(args)
-    est_params = _estimator_params(args)
-    history = load_history(args.data, kind=args.kind, frequency=args.frequency,
-                           date_column=args.date_column, missing=args.missing)
+    est_params = estimator_params(args)
+    history = load_history_from(args)
     assets = tuple(history.assets)
     rule = make_rule(args.rule, args.rule, params, assets)   # settings checked before estimating
     m = estimate(history.returns, mean=args.mean, covariance=args.covariance, params=est_params)
