@@ -56,6 +56,13 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
     except KeyboardInterrupt:
         print("noiseproof: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # the reader went away (e.g. `| head`): stop quietly, as other command-line tools do
+        import os
+
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 1
 
 
 if __name__ == "__main__":  # pragma: no cover
