@@ -101,6 +101,7 @@ class _Inputs:
     n_trials: int
     on_rule_error: str
     risk_free_given: bool
+    policy: Optional[str] = None
 
 
 # --------------------------------------------------------------------------- validation
@@ -118,7 +119,7 @@ def _int_iv(value, name, low, high=None) -> int:
 def _run_backtest_iv(returns, dates, assets, configs, *, window, expanding, rebalance_every,
                      cost_bps, risk_aversion, periods_per_year, bootstrap_resamples,
                      bootstrap_block_length, rolling_sharpe_window, seed, risk_free, n_trials,
-                     on_rule_error) -> _Inputs:
+                     on_rule_error, policy=None) -> _Inputs:
     # returns
     if isinstance(returns, pd.DataFrame):
         cols = tuple(str(c) for c in returns.columns)
@@ -269,6 +270,9 @@ def _run_backtest_iv(returns, dates, assets, configs, *, window, expanding, reba
         if n_trials < K:
             raise SettingsError(f"n_trials ({n_trials}) cannot be fewer than the {K} "
                                 f"configurations in this backtest (1/N included)")
+    if policy is not None and policy != EQUAL_WEIGHT and policy not in names:
+        raise SettingsError(f"backtest policy '{policy}' names no rule of the backtest "
+                            f"(rules: {', '.join([EQUAL_WEIGHT] + names)})")
     if on_rule_error not in ON_RULE_ERROR:
         raise SettingsError(f"on_rule_error must be one of {', '.join(ON_RULE_ERROR)}, "
                             f"not {on_rule_error!r}")
@@ -279,7 +283,8 @@ def _run_backtest_iv(returns, dates, assets, configs, *, window, expanding, reba
         risk_aversion=float(risk_aversion), periods_per_year=float(periods_per_year),
         resamples=resamples, block_length=block, block_length_rule=block_rule,
         rolling_window=rolling, seed_sequence=ss, n_trials=n_trials,
-        on_rule_error=on_rule_error, risk_free_given=risk_free is not None)
+        on_rule_error=on_rule_error, risk_free_given=risk_free is not None,
+        policy=None if policy is None else str(policy))
 
 
 def _label(d) -> str:
@@ -415,7 +420,8 @@ def run_backtest(returns, dates, assets, configs: Sequence[BacktestConfig], *, w
                  risk_aversion: float = 1.0, periods_per_year: float = 12,
                  bootstrap_resamples: int = 1000, bootstrap_block_length: Optional[int] = None,
                  rolling_sharpe_window: Optional[int] = None, seed=None, risk_free=None,
-                 n_trials: Optional[int] = None, on_rule_error: str = "raise") -> BacktestResult:
+                 n_trials: Optional[int] = None, on_rule_error: str = "raise",
+                 policy: Optional[str] = None) -> BacktestResult:
     """Run rules through rolling out-of-sample windows against 1/N.
 
     Parameters
@@ -460,6 +466,10 @@ def run_backtest(returns, dates, assets, configs: Sequence[BacktestConfig], *, w
         What a rule failure on a window does: raise an error naming the rule and the
         date, or hold the previous target (1/N for a first window) and record the date
         in the result (``fallback_dates``).
+    policy : str or None
+        Name of the rule held today (one of the configs). Every other series is then
+        also compared with it as with 1/N: Sharpe and CEQ differences with their
+        p-values, and the realised tracking error (sd of the return differences).
 
     Returns
     -------
@@ -472,7 +482,7 @@ def run_backtest(returns, dates, assets, configs: Sequence[BacktestConfig], *, w
         periods_per_year=periods_per_year, bootstrap_resamples=bootstrap_resamples,
         bootstrap_block_length=bootstrap_block_length,
         rolling_sharpe_window=rolling_sharpe_window, seed=seed, risk_free=risk_free,
-        n_trials=n_trials, on_rule_error=on_rule_error)
+        n_trials=n_trials, on_rule_error=on_rule_error, policy=policy)
     result = _execute(inp, batched=True)
     result.timings["total"] = time.perf_counter() - t0
     return result
@@ -492,7 +502,12 @@ def _execute(inp: _Inputs, *, batched: bool = True) -> BacktestResult:
     for config in inp.configs:
         key = (config.mean, config.covariance, repr(sorted(dict(config.params).items())))
         t = time.perf_counter()
-        if key not in cache:
+        if not (getattr(config.rule, "needs_mean", True)
+                or getattr(config.rule, "needs_covariance", True)):
+            key = ("input-free",)      # e.g. a fixed policy: nothing to estimate
+            if key not in cache:
+                cache[key] = (np.zeros((rows.shape[0], N)), np.zeros((rows.shape[0], N, N)))
+        elif key not in cache:
             cache[key] = _estimates(inp, config, rows, batched=batched)
         means, covs = cache[key]
         timings["estimation"] += time.perf_counter() - t

@@ -136,6 +136,12 @@ class SeriesMeasures:
     lw: Any
     ceq_test: Any
     fallback_dates: tuple
+    policy_jkm: Any = None
+    policy_lw: Any = None
+    policy_ceq_test: Any = None
+    tracking_error_vs_policy: Any = None
+    hit_rate_vs_policy: Any = None
+    psr_vs_policy: Any = None
 
 
 @dataclass(frozen=True)
@@ -241,6 +247,28 @@ class BacktestResult:
                 "ceq_diff_p": _num(m.ceq_test.p_value) if m.ceq_test else None,
                 "fallback_dates": list(m.fallback_dates),
             }
+            pol = self.settings.get("policy")
+            if pol is not None:
+                te = m.tracking_error_vs_policy
+                d.update({
+                    "sharpe_diff_policy": _num(m.policy_jkm.difference) if m.policy_jkm else None,
+                    "sharpe_diff_policy_z_jkm": (_num(m.policy_jkm.statistic) if m.policy_jkm
+                                                 else None),
+                    "sharpe_diff_policy_p_jkm": (_num(m.policy_jkm.p_value) if m.policy_jkm
+                                                 else None),
+                    "sharpe_diff_policy_p_lw": _num(m.policy_lw.p_value) if m.policy_lw else None,
+                    "ceq_diff_policy": (_num(m.policy_ceq_test.difference) if m.policy_ceq_test
+                                        else None),
+                    "ceq_diff_policy_z": (_num(m.policy_ceq_test.statistic)
+                                          if m.policy_ceq_test else None),
+                    "ceq_diff_policy_p": (_num(m.policy_ceq_test.p_value) if m.policy_ceq_test
+                                          else None),
+                    "hit_rate_vs_policy": _num(m.hit_rate_vs_policy),
+                    "psr_vs_policy": _num(m.psr_vs_policy),
+                    "tracking_error_vs_policy": _num(te),
+                    "tracking_error_vs_policy_annualised": (None if te is None
+                                                            else _num(te * math.sqrt(P))),
+                })
             out[name] = d
         return out
 
@@ -269,6 +297,10 @@ class BacktestResult:
         keys = ["sharpe", "sharpe_se", "sharpe_diff", "sharpe_diff_z_jkm", "sharpe_diff_p_jkm",
                 "sharpe_diff_p_lw", "ceq", "ceq_diff", "ceq_diff_z", "ceq_diff_p", "psr",
                 "psr_vs_equal_weight", "dsr", "min_track_record"]
+        if self.settings.get("policy") is not None:
+            keys += ["sharpe_diff_policy", "sharpe_diff_policy_p_jkm", "sharpe_diff_policy_p_lw",
+                     "ceq_diff_policy", "ceq_diff_policy_p", "tracking_error_vs_policy",
+                     "tracking_error_vs_policy_annualised"]
         t["backtest_tests"] = pd.DataFrame(
             [[summ[n][k] for k in keys] for n in cols], index=pd.Index(cols, name="rule"),
             columns=keys, dtype=float)
@@ -288,6 +320,34 @@ def _child(ss: np.random.SeedSequence, j: int) -> np.random.Generator:
     child = np.random.SeedSequence(ss.entropy, spawn_key=tuple(ss.spawn_key) + (j,),
                                    pool_size=ss.pool_size)
     return np.random.default_rng(child)
+
+
+def _policy_tests(inp, x, net, pol, k, pol_ss, P, pieces) -> dict:
+    """Tests of series ``k`` (net excess returns ``x``) against the policy's series.
+
+    The same tests as against 1/N (Jobson-Korkie-Memmel, Ledoit-Wolf bootstrap, CEQ
+    difference) and the realised tracking error: the sd (divisor P - 1) of the
+    per-period return differences. The policy itself gets tracking error 0 and no tests.
+    """
+    if pol is None:
+        return {}
+    y = net[:, pol]
+    diff = x - y
+    te = float(np.std(diff, ddof=1)) if diff.size > 1 else float("nan")
+    if k == pol:
+        return {"tracking_error_vs_policy": 0.0}
+    _, _, skew, kurt, sr = pieces[k]
+    sr_pol = pieces[pol][4]
+    out = {"policy_jkm": _stats._jkm(x, y), "policy_ceq_test": _stats._ceq(x, y, inp.risk_aversion),
+           "tracking_error_vs_policy": te, "hit_rate_vs_policy": float(np.mean(x > y)),
+           "psr_vs_policy": (_stats.probabilistic_sharpe(sr, P, skew, kurt, sr_pol)
+                             if np.isfinite(sr_pol) else float("nan"))}
+    if inp.resamples > 0:
+        rng = _child(pol_ss, k)
+        starts = rng.integers(0, P, size=(inp.resamples, -(-P // inp.block_length)),
+                              dtype=np.int64)
+        out["policy_lw"] = _stats._lw(x, y, starts, inp.block_length)
+    return out
 
 
 def build_result(inp, names, rows, targets, paths, fallbacks, timings) -> BacktestResult:
@@ -318,6 +378,12 @@ def build_result(inp, names, rows, targets, paths, fallbacks, timings) -> Backte
     finite = np.array([s for s in sharpes if np.isfinite(s)])
     trial_var = float(np.var(finite, ddof=1)) if finite.size > 1 else 0.0
     measures = {}
+    pol = None if inp.policy is None else list(names).index(inp.policy)
+    # the policy comparisons' bootstrap draws come from their own branch of the seed, so
+    # naming a policy leaves every p-value against 1/N unchanged
+    pol_ss = np.random.SeedSequence(inp.seed_sequence.entropy,
+                                    spawn_key=tuple(inp.seed_sequence.spawn_key) + (2 ** 31,),
+                                    pool_size=inp.seed_sequence.pool_size)
     for k, name in enumerate(names):
         x = net[:, k]
         mean, sd, skew, kurt, sr = pieces[k]
@@ -365,6 +431,7 @@ def build_result(inp, names, rows, targets, paths, fallbacks, timings) -> Backte
             wealth_wiped_out=_date(dates, ruin) if ruin >= 0 else None,
             hit_rate=hit, jkm=jkm, lw=lw, ceq_test=ceq,
             fallback_dates=tuple(_date(inp.dates, r) for r in fallbacks.get(name, ())),
+            **_policy_tests(inp, x, net, pol, k, pol_ss, P, pieces),
         )
     ss = inp.seed_sequence
     settings = {
@@ -395,6 +462,7 @@ def build_result(inp, names, rows, targets, paths, fallbacks, timings) -> Backte
         "last_date": _date(inp.dates, T - 1),
         "rules": list(names),
         "benchmark": names[0],
+        "policy": inp.policy,
     }
     return BacktestResult(
         names=tuple(names), assets=inp.assets, dates=dates, rebalance_dates=rdates,

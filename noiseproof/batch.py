@@ -1364,7 +1364,11 @@ def run_batch(plan: Plan, out, *, executor=None, engine: Optional[Engine] = None
         progress.plan(len(pending))
         progress.start(blocks_total, blocks_already)
 
-        window = max(2, 2 * int(getattr(executor, "slots", 1)))
+        # about 4 tasks per worker slot in flight: the batch thread writes each result
+        # (fsync) before it submits again, and short blocks must not leave workers idle
+        slots = int(getattr(executor, "slots", 1))
+        window = max(2, 4 * slots)
+        study_cap = max(4, 2 * slots)     # studies prepared at once (memory bound)
         active: list = []
 
         def activate(st: _Study) -> None:
@@ -1439,7 +1443,7 @@ def run_batch(plan: Plan, out, *, executor=None, engine: Optional[Engine] = None
             while len(inflight) < window:
                 if submit_next():
                     continue
-                if not pending or len(active) >= max(4, window):
+                if not pending or len(active) >= study_cap:
                     break
                 st = pending.popleft()
                 try:

@@ -210,8 +210,9 @@ class DaskExecutor:
     (``--dask-local``); ``client`` uses a client the caller owns (tests, notebooks).
 
     A worker that dies mid-block loses nothing but time: the scheduler reruns the task
-    elsewhere (up to the cluster's ``allowed-failures``), and the spec each block needs is
-    held by a recomputable task rather than scattered data, so it survives the death too.
+    elsewhere (up to the cluster's ``allowed-failures``). The spec each block needs travels
+    with the task (or, when large, is held by a recomputable task rather than scattered
+    data), so it survives the death too.
     Worker machines need noiseproof installed (the same version as the client).
     """
 
@@ -237,10 +238,16 @@ class DaskExecutor:
                 raise SettingsError(f"--dask-local must be at least 1, not {n}")
             import logging
 
+            import dask
+
             env = {name: "1" for name in _THREAD_VARIABLES}
-            self._cluster = distributed.LocalCluster(
-                n_workers=n, threads_per_worker=1, processes=True, dashboard_address=":0",
-                silence_logs=logging.ERROR, env=env)
+            # the workers' sampling profiler and GIL monitor cost compute time in every
+            # task (the worker's threads interrupt the one computing); a batch needs neither
+            with dask.config.set({"distributed.worker.profile.enabled": False,
+                                  "distributed.admin.system-monitor.gil.enabled": False}):
+                self._cluster = distributed.LocalCluster(
+                    n_workers=n, threads_per_worker=1, processes=True, dashboard_address=":0",
+                    silence_logs=logging.ERROR, env=env)
             self._client = distributed.Client(self._cluster)
         self._address = address
         info = self._client.scheduler_info()
@@ -257,11 +264,32 @@ class DaskExecutor:
         return (f"Dask, {w} worker{'s' if w != 1 else ''} / {t} thread{'s' if t != 1 else ''} "
                 f"on {where}")
 
+    #: Specs smaller than this (pickled) travel inside every task; larger ones are held on
+    #: the cluster once and replicated to every worker.
+    INLINE_SPEC_BYTES = 1 << 20
+
     def share(self, obj, key: str = ""):
-        return self._client.submit(_hold, obj, key=f"noiseproof-spec-{key}-{time.time_ns()}",
-                                   pure=False)
+        """What the tasks of one study receive as their spec.
+
+        A small spec goes by value with every task: a task that depended on data held by
+        one worker would be scheduled on that worker (data locality), leaving the others
+        idle. A large one is held by a recomputable task and replicated to every worker.
+        """
+        import pickle
+
+        if len(pickle.dumps(obj, protocol=pickle.HIGHEST_PROTOCOL)) < self.INLINE_SPEC_BYTES:
+            return obj
+        fut = self._client.submit(_hold, obj, key=f"noiseproof-spec-{key}-{time.time_ns()}",
+                                  pure=False)
+        try:
+            self._client.replicate([fut])
+        except Exception:  # pragma: no cover - replication is an optimisation only
+            pass
+        return fut
 
     def unshare(self, ref) -> None:
+        if not hasattr(ref, "release") or not hasattr(ref, "key"):
+            return
         try:
             ref.release()
         except Exception:  # pragma: no cover - already released or client closing

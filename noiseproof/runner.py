@@ -152,18 +152,44 @@ def _risk_free_summary(d, h):
     return None
 
 
-def _build_rules(settings: StudySettings, assets: tuple):
+def _make_rule(settings: StudySettings, r, assets: tuple, **kw):
+    """optimise.make_rule for one [[rules]] table; errors name the study file."""
+    from estimators.core import NoiseproofError
+    from optimise import make_rule
+
+    try:
+        return make_rule(r.name, r.type, dict(r.params), assets, **kw)
+    except NoiseproofError as exc:
+        raise type(exc)(f"{settings.path or 'study'}: {exc}") from None
+
+
+def _policy_weights(settings: StudySettings, assets: tuple, ppy):
+    """The policy's fixed weights (N,), or None (no policy, or a policy that is not fixed)."""
+    if settings.policy is None:
+        return None
+    r = next(r for r in settings.rules if r.name == settings.policy)
+    if r.type != "fixed":
+        if any("max_tracking_error" in x.params for x in settings.rules):
+            raise SettingsError(f"{settings.path or 'study'}: max_tracking_error is measured "
+                                f"against fixed policy weights, but policy = '{r.name}' is a "
+                                f"'{r.type}' rule; make the policy a rule of type 'fixed'")
+        return None
+    return _make_rule(settings, r, assets, periods_per_year=ppy).fixed_weights
+
+
+def _build_rules(settings: StudySettings, assets: tuple, ppy=None):
     from optimise import make_rule
     from simulate import RuleSpec
 
     params = _estimator_params(settings)
     specs = []
     names = set()
+    policy_w = _policy_weights(settings, assets, ppy)
     for r in settings.rules:
         if r.name == "equal-weight" and r.type != "equal-weight":
             raise SettingsError(f"rule name 'equal-weight' is reserved for 1/N (the rule "
                                 f"named so has type '{r.type}')")
-        rule = make_rule(r.name, r.type, dict(r.params), assets)
+        rule = _make_rule(settings, r, assets, policy_weights=policy_w, periods_per_year=ppy)
         specs.append(RuleSpec(rule, r.mean or settings.estimate.mean,
                               r.covariance or settings.estimate.covariance, dict(params)))
         names.add(r.name)
@@ -216,7 +242,7 @@ def prepare_study(settings: StudySettings, *, draws: Optional[int] = None,
         returns = None
     gamma = study_risk_aversion(settings)
     gamma_source = _risk_aversion_source(settings)
-    rule_specs = _build_rules(settings, assets)
+    rule_specs = _build_rules(settings, assets, ppy)
     _stamp(log, f"rules: {', '.join(rs.name for rs in rule_specs)}; scored with risk aversion "
                 f"{gamma:g} ({gamma_source})")
 
@@ -279,7 +305,8 @@ def prepare_study(settings: StudySettings, *, draws: Optional[int] = None,
             keep_draws=bool(r.keep_draws), frontier_points=int(r.frontier_points),
             sweep_lengths=tuple(sweep), sweep_draws=r.sweep_draws,
             attribution=bool(r.attribution), hold_threshold=float(r.hold_threshold),
-            draw=r.draw, periods_per_year=ppy, population_source=source)
+            draw=r.draw, periods_per_year=ppy, population_source=source,
+            policy=settings.policy)
         from simulate.engine import _spec_iv
 
         _spec_iv(spec)
@@ -333,7 +360,7 @@ def _backtest_inputs(settings, history, rule_specs, gamma, ppy, log) -> dict:
             "bootstrap_resamples": int(b.bootstrap_resamples),
             "bootstrap_block_length": b.bootstrap_block_length,
             "rolling_sharpe_window": b.rolling_sharpe_window, "seed": int(seed),
-            "n_trials": None}
+            "n_trials": None, "policy": settings.policy}
 
 
 def _run_backtest(prepared: PreparedStudy, log: list):
@@ -385,7 +412,13 @@ def _verdict(prepared: PreparedStudy, summary: dict) -> dict:
         return {"proposed": None, "rule": None, "answer": "not assessed",
                 "reason": "the study has no rule besides 1/N", "criteria": [],
                 "settings": settings_out, "criteria_passed": 0, "criteria_assessed": 0}
-    policy = prepared.settings.policy or names[0]
+    held = prepared.settings.policy
+    candidates = [n for n in names if n != held]
+    if not candidates:
+        return {"proposed": None, "rule": None, "policy": held, "answer": "not assessed",
+                "reason": "the study has no rule besides 1/N and the policy", "criteria": [],
+                "settings": settings_out, "criteria_passed": 0, "criteria_assessed": 0}
+    policy = candidates[0]        # the proposal: the first rule that is not 1/N or the policy
     rule = summary["rules"].get(policy, {})
     criteria = []
     weights = rule.get("weights")
@@ -435,9 +468,168 @@ def _verdict(prepared: PreparedStudy, summary: dict) -> dict:
         answer = "mixed"
     else:
         answer = "does not survive"
-    return {"proposed": policy, "rule": policy, "answer": answer, "criteria": criteria,
-            "settings": settings_out,
+    out = {"proposed": policy, "rule": policy, "answer": answer, "criteria": criteria,
+           "settings": settings_out,
+           "criteria_passed": sum(bool(x) for x in decided), "criteria_assessed": len(decided),
+           "policy": held}
+    if held is not None:
+        out["against_policy"] = _verdict_policy(summary, policy, held, v)
+    return out
+
+
+def _verdict_policy(summary: dict, name: str, held: str, v) -> dict:
+    """The same comparisons against the policy (the allocation held today), with the
+    transition cost. Thresholds: those of the 1/N criteria."""
+    rule = summary["rules"].get(name, {})
+    criteria = []
+    pop = rule.get("population") or {}
+    if "population" in rule:
+        p = pop.get("prob_beats_policy_ceq")
+        criteria.append({"name": "prob_beats_policy_ceq", "description":
+                         f"share of draws beating the policy on population CEQ at least "
+                         f"{v.min_prob_beats_equal_weight:g}",
+                         "value": p, "threshold": v.min_prob_beats_equal_weight,
+                         "passed": None if p is None else bool(p >= v.min_prob_beats_equal_weight)})
+    bt = rule.get("backtest") or {}
+    if bt:
+        pv = bt.get("sharpe_diff_policy_p_lw")
+        if pv is None:
+            pv = bt.get("sharpe_diff_policy_p_jkm")
+        diff = bt.get("sharpe_diff_policy")
+        passed = None
+        if pv is not None and diff is not None:
+            passed = bool(diff > 0 and pv <= v.significance)
+        criteria.append({"name": "backtest_sharpe_vs_policy", "description":
+                         f"out-of-sample Sharpe ratio above the policy's, difference p-value "
+                         f"(Ledoit & Wolf 2008 bootstrap, else Jobson-Korkie-Memmel) at most "
+                         f"{v.significance:g}", "value": pv, "threshold": v.significance,
+                         "sharpe_diff": diff, "passed": passed})
+    tr = rule.get("transition") or {}
+    be = tr.get("break_even_periods")
+    if tr:
+        criteria.append({"name": "transition_pays_back", "description":
+                         "the expected CEQ gain over the policy is positive, so the "
+                         "transition cost is paid back after a finite number of periods",
+                         "value": be, "basis": tr.get("break_even_basis"),
+                         "passed": None if be is None else be != "never"})
+    decided = [c["passed"] for c in criteria if c["passed"] is not None]
+    if not decided:
+        answer = "not assessed"
+    elif all(decided):
+        answer = "better than the policy"
+    elif any(decided):
+        answer = "mixed"
+    else:
+        answer = "not better than the policy"
+    return {"policy": held, "proposed": name, "answer": answer, "criteria": criteria,
             "criteria_passed": sum(bool(x) for x in decided), "criteria_assessed": len(decided)}
+
+
+def _transition(prepared: PreparedStudy, summary: dict) -> Optional[dict]:
+    """Moving from the policy to each rule's in-sample allocation: turnover, its cost,
+    the expected CEQ gain (in-sample and population) and the break-even horizon.
+
+    Turnover is ``sum_i |w_i - p_i| + |cash_w - cash_p|`` (the cash leg counted when
+    either side holds cash); the cost is ``sum_i cost_bps_i / 1e4 |w_i - p_i|`` (cash
+    trades free, as in the backtest). The in-sample gain scores both allocations with
+    the study's [estimate] moments, the population gain is the rule's mean population
+    CEQ over the draws minus the policy's. Break-even periods = cost / gain, "never"
+    when the gain is <= 0.
+    """
+    held = prepared.settings.policy
+    if held is None:
+        return None
+    from estimators import estimate
+    from optimise import tracking_error
+
+    s = prepared.settings
+    assets = prepared.assets
+    n = len(assets)
+    notes = []
+    b = s.backtest
+    if b is None:
+        bps = np.zeros(n)
+        bps_record = 0.0
+        notes.append("the study has no [backtest] section, so its cost_bps is unknown: the "
+                     "transition is costed at 0 bp")
+    elif isinstance(b.cost_bps, dict):
+        bps = np.array([float(b.cost_bps.get(a, 0.0)) for a in assets])
+        bps_record = dict(zip(assets, map(float, bps)))
+    else:
+        bps = np.full(n, float(b.cost_bps))
+        bps_record = float(b.cost_bps)
+    if prepared.history is not None:
+        e = s.estimate
+        m = estimate(np.ascontiguousarray(prepared.history.returns, dtype=np.float64), e.mean,
+                     e.covariance, params=_estimator_params(s) or None)
+        mu, cov = np.asarray(m.mean), np.asarray(m.covariance)
+        basis = f"the study's [estimate] moments ({e.mean} mean, {e.covariance} covariance)"
+    else:
+        mu = np.asarray(prepared.assumptions.mean)
+        cov = np.asarray(prepared.assumptions.covariance)
+        basis = "the capital-market assumptions"
+    pop_cov = None if prepared.spec is None else np.asarray(prepared.spec.population_cov)
+    gamma = prepared.risk_aversion
+    ppy = prepared.periods_per_year
+    p = prepared.in_sample[held]["weights"]
+    pc = prepared.in_sample[held]["cash"]
+
+    def ceq(w):
+        return float(w @ mu - 0.5 * gamma * (w @ cov @ w))
+
+    out = {}
+    for rs in prepared.rule_specs:
+        w = prepared.in_sample[rs.name]["weights"]
+        c = prepared.in_sample[rs.name]["cash"]
+        trade = np.abs(w - p)
+        risky = float(trade.sum())
+        turnover = risky + abs(c - pc)
+        cost = float((bps / 1e4) @ trade)
+        gain_in = ceq(w) - ceq(p)
+        pop = (summary["rules"][rs.name].get("population") or {})
+        gain_pop = pop.get("ceq_gain_vs_policy")
+        entry = {"from": held, "turnover": turnover, "turnover_risky": risky,
+                 "cash_change": float(c - pc), "cost": cost,
+                 "ceq_gain_per_period_in_sample": gain_in,
+                 "ceq_gain_per_period_in_sample_annualised": gain_in * ppy,
+                 "ceq_gain_per_period_population": gain_pop,
+                 "ceq_gain_per_period_population_annualised":
+                     None if gain_pop is None else gain_pop * ppy,
+                 "tracking_error_in_sample": tracking_error(w, p, cov),
+                 "tracking_error_in_sample_annualised": tracking_error(w, p, cov) * math.sqrt(ppy)}
+        if pop_cov is not None:
+            te = tracking_error(w, p, pop_cov)
+            entry["tracking_error_population"] = te
+            entry["tracking_error_population_annualised"] = te * math.sqrt(ppy)
+        if rs.name == held:
+            entry.update({"ceq_gain_per_period": 0.0, "break_even_periods": None,
+                          "break_even_periods_in_sample": None,
+                          "break_even_periods_population": None, "break_even_years": None,
+                          "break_even_basis": None, "note": "the policy itself: no move"})
+            out[rs.name] = entry
+            continue
+        for key, g in (("in_sample", gain_in), ("population", gain_pop)):
+            if g is None:
+                entry[f"break_even_periods_{key}"] = None
+            elif g <= 0:
+                entry[f"break_even_periods_{key}"] = "never"
+            else:
+                entry[f"break_even_periods_{key}"] = cost / g
+        basis_key = "population" if gain_pop is not None else "in_sample"
+        entry["ceq_gain_per_period"] = gain_pop if gain_pop is not None else gain_in
+        entry["break_even_basis"] = basis_key
+        be = entry[f"break_even_periods_{basis_key}"]
+        entry["break_even_periods"] = be
+        entry["break_even_years"] = be / ppy if isinstance(be, float) else be
+        out[rs.name] = entry
+    meta = {"policy": held, "cost_bps": bps_record, "notes": notes,
+            "in_sample_basis": basis, "risk_aversion": gamma,
+            "convention": "turnover = sum |w - p| over assets plus |cash change|; cost = "
+                          "sum cost_bps/1e4 |w_i - p_i| (cash trades free); break-even periods "
+                          "= cost / expected CEQ gain per period (population gain when "
+                          "resampling ran, else in-sample); 'never' when the gain is <= 0"}
+    return {"rules": out, "meta": meta}
+
 
 
 def _build_summary(prepared: PreparedStudy, result, bt, created: str) -> dict:
@@ -479,6 +671,11 @@ def _build_summary(prepared: PreparedStudy, result, bt, created: str) -> dict:
                 summary["rules"][name]["backtest"] = entry
     else:
         summary["backtest"] = {"skipped": prepared.backtest_skipped or "not run"}
+    tr = _transition(prepared, summary)
+    if tr is not None:
+        summary["transition"] = tr["meta"]
+        for name, entry in tr["rules"].items():
+            summary["rules"][name]["transition"] = entry
     summary["verdict"] = _verdict(prepared, summary)
     summary["disclaimer"] = ("Simulated and backtested figures are hypothetical. Decision "
                              "support, not investment advice.")

@@ -1064,6 +1064,68 @@ def kkt_batch(H, c, A, lo, hi, lb, ub, X, Z, NU, out):
         out[d] = worst / scale
 
 
+def path_slopes(H, g, A, lo, hi, lb, ub, X, tol, out):
+    """Slope ``dx/dt`` of parametric QP solutions along their current active set.
+
+    The QP ``min 1/2 x'Hx - (c + t g)'x`` (constraints as in :func:`qp_solve`) has a
+    solution that is affine in ``t`` while its active set stays the same; this returns
+    that slope at the solutions ``X``. Active: variables within ``tol (1 + |bound|)`` of a
+    bound (slope 0), rows that are equalities or within ``tol (1 + |side|)`` of a side
+    (held). The free block solves ``[H_FF E'; E 0] [dx_F; dnu] = [g_F; 0]`` by least
+    squares (dependent active rows are harmless).
+
+    Parameters
+    ----------
+    H : (D, N, N); g : (D, N); A : (D, M, N); lo, hi : (D, M); lb, ub : (N,)
+    X : (D, N) solutions; tol : float
+    out : (D, N) written with the slopes.
+    """
+    D = H.shape[0]
+    n = H.shape[1]
+    m = A.shape[1]
+    free = np.empty(n, dtype=np.int64)
+    rows = np.empty(m, dtype=np.int64)
+    for d in range(D):
+        nf = 0
+        for i in range(n):
+            x = X[d, i]
+            at_lo = lb[i] > -np.inf and x - lb[i] <= tol * (1.0 + abs(lb[i]))
+            at_hi = ub[i] < np.inf and ub[i] - x <= tol * (1.0 + abs(ub[i]))
+            out[d, i] = 0.0
+            if not (at_lo or at_hi):
+                free[nf] = i
+                nf += 1
+        nr = 0
+        for k in range(m):
+            ax = 0.0
+            for i in range(n):
+                ax += A[d, k, i] * X[d, i]
+            act = lo[d, k] == hi[d, k]
+            if not act and lo[d, k] > -np.inf and abs(ax - lo[d, k]) <= tol * (1.0 + abs(lo[d, k])):
+                act = True
+            if not act and hi[d, k] < np.inf and abs(hi[d, k] - ax) <= tol * (1.0 + abs(hi[d, k])):
+                act = True
+            if act:
+                rows[nr] = k
+                nr += 1
+        if nf == 0:
+            continue
+        size = nf + nr
+        K = np.zeros((size, size))
+        rhs = np.zeros(size)
+        for a in range(nf):
+            ia = free[a]
+            rhs[a] = g[d, ia]
+            for b in range(nf):
+                K[a, b] = H[d, ia, free[b]]
+            for r in range(nr):
+                K[a, nf + r] = A[d, rows[r], ia]
+                K[nf + r, a] = A[d, rows[r], ia]
+        sol = np.linalg.lstsq(K, rhs, -1.0)[0]
+        for a in range(nf):
+            out[d, free[a]] = sol[a]
+
+
 # ----------------------------------------------------------------------------------------
 # compile: each name below becomes a numba kernel. :func:`plain_twin` executes this same
 # source with an identity decorator, giving undecorated Python twins for the tests.
@@ -1088,6 +1150,7 @@ _erc_obj = _compile(_erc_obj)
 erc_batch = _compile(erc_batch)
 cov_checks = _compile(cov_checks)
 kkt_batch = _compile(kkt_batch)
+path_slopes = _compile(path_slopes)
 
 
 def plain_twin():

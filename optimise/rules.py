@@ -36,18 +36,22 @@ Rule types (``RULE_TYPES``) and what they solve
 
 Tracking error against a policy
 -------------------------------
-``min-variance``, ``mean-variance`` and ``target-return`` accept ``max_tracking_error``
-(``tracking_error_units`` = ``"per period"``, the default, or ``"annualised"``): the
-second-order cone constraint ``(w - p)'Sigma (w - p) <= te^2`` with ``p`` the policy's
-weights. It is solved exactly through its Lagrangian: for a multiplier ``eta >= 0`` the
-problem with ``eta/2 (w - p)'Sigma (w - p)`` added to the objective is a QP the
-active-set solver handles; writing ``t = eta / (1 + eta)`` the QP's linear term is
+``min-variance``, ``mean-variance``, ``target-return`` and ``max-sharpe`` accept
+``max_tracking_error`` (``tracking_error_units`` = ``"per period"``, the default, or
+``"annualised"``): the second-order cone constraint ``(w - p)'Sigma (w - p) <= te^2`` with
+``p`` the policy's weights. It is solved exactly through its Lagrangian: for a multiplier
+``eta >= 0`` the problem with ``eta/2 (w - p)'Sigma (w - p)`` added to the objective is a
+QP the active-set solver handles; writing ``t = eta / (1 + eta)`` the QP's linear term is
 ``(1 - t) c + t Sigma p`` and its solution is piecewise affine in ``t`` with a tracking
-error that does not increase in ``t``. A bracketing search in ``t`` that steps to the
-exact root of the quadratic ``TE(t)^2 = te^2`` along the affine piece between its
-brackets stops when the constraint binds to ``1e-10`` relative (usually after a few
-QPs). ``t = 1`` minimises the tracking error itself: a limit below that minimum is
-infeasible, and a limit of 0 returns the policy when the rule's constraints allow it.
+error that does not increase in ``t``. A bracketing search in ``t`` steps to the exact root
+of ``TE(t)^2 = te^2`` on the affine piece of the newest bracket end (its slope from the
+KKT system of its active set, ``_kernels.path_slopes``), else along the straight path
+between the ends, bisecting when three steps did not halve the bracket; it stops when the
+constraint binds to ``1e-10`` relative. ``t = 1`` minimises the tracking error itself: a
+limit below that minimum is infeasible, and a limit of 0 returns the policy when the
+rule's constraints allow it. For ``max-sharpe`` the limited mean-variance solution
+``w(tau)`` is searched over the risk tolerance ``tau`` for ``w'Sigma w = tau w'mu_ex``
+(the Sharpe ratio is quasi-concave, so that stationary point is its maximum).
 """
 from __future__ import annotations
 
@@ -89,7 +93,7 @@ RULE_PARAMS = {
     "fixed": ("weights",) + _COMMON,
 }
 #: Rule types that take ``max_tracking_error`` (a QP with Hessian Sigma).
-TE_TYPES = ("min-variance", "mean-variance", "target-return")
+TE_TYPES = ("min-variance", "mean-variance", "target-return", "max-sharpe")
 #: Accepted spellings of ``tracking_error_units``.
 TE_UNITS = {"per period": "per period", "per-period": "per period", "period": "per period",
             "annualised": "annualised", "annualized": "annualised", "annual": "annualised"}
@@ -226,6 +230,21 @@ class Rule:
         mu, S = means[0], covs[0]
         w = np.asarray(weights, dtype=float)
         cons = self.constraints
+        if self.type == "max-sharpe" and self.max_tracking_error is not None:
+            # a stationary point of the Sharpe ratio over the convex set is its maximum
+            # (quasi-concavity): KKT of min 1/2 w'Sw - tau mu_ex'w, tau = w'Sw / mu_ex'w,
+            # under the linear constraints and the cone
+            ex = mu - self.risk_free
+            tau = float(w @ S @ w) / float(ex @ w)
+            A, lo, hi = cons.rows()
+            d = w - self.policy_weights
+            te2 = self.max_tracking_error ** 2
+            gap = te2 - float(d @ S @ d)
+            extra = [S @ d] if abs(gap) <= 1e-8 * max(te2, 1e-300) else []
+            r = kkt_residuals(w, S, tau * ex, A, lo, hi, cons.lower, cons.upper,
+                              extra_gradients=extra)
+            return KKTResiduals(r.stationarity, max(r.primal, -gap / max(te2, 1e-300)), r.dual,
+                                r.complementarity)
         if self.type == "max-sharpe":
             H, c, A, lo, hi, lb, ub = self._sharpe_problem(mu[None, :], S[None])
             y = w / float((mu - self.risk_free) @ w)
@@ -601,15 +620,30 @@ class Rule:
         does not shrink the bracket enough.
         """
         self._check_conditioning(covs, single)
-        p = self.policy_weights
-        te2 = float(self.max_tracking_error) ** 2
+        if self.type == "max-sharpe":
+            return self._sharpe_te(means, covs, single)
         H, c, A, lo, hi, lb, ub = self._qp_problem(means, covs)
-        D, n = c.shape
         A = np.ascontiguousarray(np.broadcast_to(A, A.shape))
         lo = np.ascontiguousarray(lo)
         hi = np.ascontiguousarray(hi)
-        Sp = np.einsum("dij,j->di", covs, p)
         x0 = self._starts(means, covs, H, c, A, lo, hi, lb, ub, single)
+        X, kkt, _ = self._te_core(covs, H, c, A, lo, hi, lb, ub, x0, single)
+        return X, kkt, None
+
+    def _te_core(self, covs, H, c, A, lo, hi, lb, ub, x0, single: bool, least=None,
+                 t_guess=None):
+        """The tracking-error search for QPs ``min 1/2 x'Hx - c'x`` with ``H = Sigma``.
+
+        ``least``: the solutions at ``t = 1`` (X, Z, NU, kkt), when the caller has them
+        (they do not depend on ``c``); ``t_guess`` (D,): a first point to try inside the
+        bracket (e.g. the multiplier of a nearby problem).
+
+        Returns (X (D, N), kkt (D,), t (D,)) with ``t = eta / (1 + eta)`` of each draw.
+        """
+        p = self.policy_weights
+        te2 = float(self.max_tracking_error) ** 2
+        D, n = c.shape
+        Sp = np.einsum("dij,j->di", covs, p)
         X, Z, NU, kkt = self._qp_core(H, c, A, lo, hi, lb, ub, x0, single)
 
         def te2_of(Xs, idx):
@@ -622,15 +656,20 @@ class Rule:
             return self._qp_core(H[idx], ct, A[idx], lo[idx], hi[idx], lb, ub,
                                  np.ascontiguousarray(start), single, warm=False)
 
-        tol = TE_RTOL * max(te2, 1e-300)
+        # TE^2 accuracy: relative to the limit, with a floor at round-off of the variances
+        tol = TE_RTOL * te2 + 1e-13 * np.max(np.diagonal(covs, axis1=1, axis2=2), axis=1)
         f0 = te2_of(X, np.arange(D)) - te2
         T = np.zeros(D)
         act = np.flatnonzero(f0 > tol)
         if act.size:
             one = np.ones(act.size)
-            X1, Z1, N1, k1 = solve(act, one, X[act])
+            if least is None:
+                X1, Z1, N1, k1 = solve(act, one, X[act])
+            else:
+                X1, Z1, N1, k1 = (np.array(a[act]) for a in least)
             f1 = te2_of(X1, act) - te2
-            bad = f1 > tol
+            tol_a = tol[act]
+            bad = f1 > tol_a
             if np.any(bad):
                 j = int(np.flatnonzero(bad)[0])
                 d = int(act[j])
@@ -645,35 +684,63 @@ class Rule:
             f_lo, f_hi = f0[act], f1
             X_lo, X_hi = X[act].copy(), X1
             Z_hi, N_hi, k_hi = Z1, N1, k1
-            done = f_hi >= -tol             # binds at t = 1 (a limit of 0, or exactly the least)
+            done = f_hi >= -tol_a           # binds at t = 1 (a limit of 0, or exactly the least)
+            if te2 == 0.0 and self.constraints.is_feasible(p, 1e-12):
+                X_hi[:] = p                  # a limit of 0 with a feasible policy: the policy
             covs_a = covs[act]
+            slope_dir = np.ascontiguousarray(Sp[act] - c[act])     # d c_t / d t
+            newest_hi = np.ones(act.size, dtype=bool)              # which end was set last
+            w_mark = np.ones(act.size)
             for it in range(200):
                 todo = np.flatnonzero(~done)
                 if todo.size == 0:
                     break
+                width = t_hi[todo] - t_lo[todo]
+                # 1. Newton along the active set of the newest end: exact when the root
+                #    lies on that end's affine piece (slope from the KKT system)
+                nh = newest_hi[todo][:, None]
+                Xe = np.ascontiguousarray(np.where(nh, X_hi[todo], X_lo[todo]))
+                te_ = np.where(nh[:, 0], t_hi[todo], t_lo[todo])
+                fe = np.where(nh[:, 0], f_hi[todo], f_lo[todo])
+                ia = act[todo]
+                V = np.empty_like(Xe)
+                K.path_slopes(np.ascontiguousarray(H[ia]), slope_dir[todo], A[ia], lo[ia], hi[ia],
+                              lb, ub, Xe, 1e-10, V)
+                SV = np.einsum("dij,dj->di", covs_a[todo], V)
+                qa = np.einsum("dn,dn->d", V, SV)
+                qb = 2.0 * np.einsum("dn,dn->d", Xe - p, SV)
+                disc = qb * qb - 4.0 * qa * fe
+                den = -qb + np.sqrt(np.maximum(disc, 0.0))
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    tn = te_ + np.where((disc >= 0) & (den > 0), 2.0 * fe / den, np.nan)
+                inside = np.isfinite(tn) & (tn > t_lo[todo]) & (tn < t_hi[todo])
+                # 2. else the root of TE^2 along the straight path between the two ends
                 d0 = X_lo[todo] - p
                 dd = X_hi[todo] - X_lo[todo]
                 Sdd = np.einsum("dij,dj->di", covs_a[todo], dd)
-                qa = np.einsum("dn,dn->d", dd, Sdd)
-                qb = 2.0 * np.einsum("dn,dn->d", d0, Sdd)
-                qc = f_lo[todo]
-                s = _root_01(qa, qb, qc)
-                width = t_hi[todo] - t_lo[todo]
-                if it % 3 == 2:             # safeguard: a bisection every third step
-                    s = np.full(todo.size, 0.5)
-                s = np.clip(s, 1e-3, 1.0 - 1e-3) if it >= 12 else np.clip(s, 0.0, 1.0)
-                tn = t_lo[todo] + s * width
+                s = _root_01(np.einsum("dn,dn->d", dd, Sdd),
+                             2.0 * np.einsum("dn,dn->d", d0, Sdd), f_lo[todo])
+                s = np.clip(s, 1e-3, 1.0 - 1e-3) if it >= 8 else np.clip(s, 0.0, 1.0)
+                tn = np.where(inside, tn, t_lo[todo] + s * width)
+                if it == 0 and t_guess is not None:
+                    gs = t_guess[act[todo]]
+                    tn = np.where((gs > t_lo[todo]) & (gs < t_hi[todo]), gs, tn)
+                if it % 4 == 0:
+                    w_mark[todo] = width
+                elif it % 4 == 3:           # safeguard: bisect unless 3 steps halved the bracket
+                    tn = np.where(width > 0.5 * w_mark[todo], t_lo[todo] + 0.5 * width, tn)
                 Xn, Zn, Nn, kn = solve(act[todo], tn, X_hi[todo])
                 fn = te2_of(Xn, act[todo]) - te2
-                hit = np.abs(fn) <= tol
+                hit = np.abs(fn) <= tol_a[todo]
                 tiny = width <= 1e-15
-                lo_m = fn > tol                      # still above the limit: new lower end
+                lo_m = fn > tol_a[todo]              # still above the limit: new lower end
                 hi_m = ~lo_m                         # within the limit: new upper end
                 g = todo[hi_m]
                 t_hi[g], f_hi[g], X_hi[g] = tn[hi_m], fn[hi_m], Xn[hi_m]
                 Z_hi[g], N_hi[g], k_hi[g] = Zn[hi_m], Nn[hi_m], kn[hi_m]
                 g = todo[lo_m]
                 t_lo[g], f_lo[g], X_lo[g] = tn[lo_m], fn[lo_m], Xn[lo_m]
+                newest_hi[todo] = hi_m
                 done[todo[hit | tiny]] = True
             if not np.all(done):   # pragma: no cover - the bracket always shrinks
                 raise RuntimeError(f"rule '{self.name}': tracking-error search did not converge")
@@ -681,16 +748,120 @@ class Rule:
         # certificate of the cone constraint: primal feasibility (TE^2 <= te^2 within the
         # tolerance) and complementary slackness eta (te^2 - TE^2) with eta = t / (1 - t)
         f = te2_of(X, np.arange(D)) - te2
-        with np.errstate(divide="ignore", invalid="ignore"):
-            eta = np.where(T < 1.0, T / (1.0 - T), np.inf)
-        comp = np.where(T > 0, np.where(np.isfinite(eta), eta * np.abs(f), np.abs(f)), 0.0)
-        cone = np.maximum(np.maximum(f, 0.0), comp) / max(te2, 1e-300)
+        fin = T < 1.0
+        eta = np.where(fin, T / np.where(fin, 1.0 - T, 1.0), 0.0)
+        comp = np.where(T > 0, np.where(fin, eta * np.abs(f), np.abs(f)), 0.0)
+        cone = np.maximum(np.maximum(f, 0.0), comp) / np.maximum(te2, tol * 1e8)
         bad = cone > 1e-8
         if np.any(bad):   # pragma: no cover - guarded by the search's stopping rule
             d = int(np.flatnonzero(bad)[0])
             raise RuntimeError(f"rule '{self.name}': tracking-error limit not met (draw {d}, "
                                f"relative residual {cone[d]:.3g})")
-        return _clean(X, self.constraints), np.maximum(kkt, cone), None
+        return _clean(X, self.constraints), np.maximum(kkt, cone), T
+
+    def _sharpe_te(self, means, covs, single: bool):
+        """Maximum Sharpe ratio within the tracking-error limit.
+
+        The Sharpe ratio is quasi-concave, so its maximum over the convex feasible set
+        (linear constraints and the cone) is the point of that set's efficient frontier
+        where ``Sigma w - tau mu_ex`` is normal to the set with ``tau = w'Sigma w /
+        w'mu_ex``: the tracking-error-limited mean-variance solution ``w(tau)`` of
+        ``min 1/2 w'Sigma w - tau mu_ex'w`` at the root of ``r(tau) = V(tau) - tau M(tau)``
+        (``V`` variance, ``M`` excess mean). ``dSharpe/dtau`` has the sign of ``r``, so
+        ``r`` falls through zero once; the root is bracketed and found by steps to the
+        root of the quadratic that ``r`` is along the affine path between the bracket's
+        solutions, with a bisection every third step.
+        """
+        cons = self.constraints
+        D, n = means.shape
+        mu = means - self.risk_free
+        A0, lo0, hi0 = cons.rows()
+        A = np.ascontiguousarray(np.broadcast_to(A0, (D,) + A0.shape))
+        lo = np.ascontiguousarray(np.broadcast_to(lo0, (D, lo0.size)))
+        hi = np.ascontiguousarray(np.broadcast_to(hi0, (D, hi0.size)))
+        lb, ub = cons.lower.copy(), cons.upper.copy()
+        H = covs
+        x0 = self._cold_points(covs, np.zeros((D, n)))
+        # the least-tracking-error solutions (t = 1) do not depend on tau: solved once
+        Sp = np.einsum("dij,j->di", covs, self.policy_weights)
+        least = self._qp_core(H, Sp, A, lo, hi, lb, ub, x0, single)
+        t_prev = np.full(D, np.nan)            # last multiplier per draw: the next first guess
+
+        def solve(idx, tau, start):
+            X, kkt, T = self._te_core(covs[idx], H[idx], tau[:, None] * mu[idx], A[idx], lo[idx],
+                                      hi[idx], lb, ub, np.ascontiguousarray(start), single,
+                                      least=tuple(a[idx] for a in least), t_guess=t_prev[idx])
+            t_prev[idx] = T
+            return X, kkt
+
+        def resid(X, idx, tau):
+            V = np.einsum("dn,dn->d", np.einsum("dij,dj->di", covs[idx], X), X)
+            M = np.einsum("dn,dn->d", mu[idx], X)
+            return V - tau * M, V, M
+
+        allidx = np.arange(D)
+        X_lo, k_lo = solve(allidx, np.zeros(D), x0)
+        t_lo = np.zeros(D)
+        r_lo, V0, M0 = resid(X_lo, allidx, t_lo)
+        # an upper end: grow tau until r < 0 (needs an attainable positive excess mean)
+        scale = np.maximum(V0, 1e-300) / np.maximum(np.abs(mu).max(axis=1), 1e-300)
+        t_hi = np.maximum(np.where(M0 > 0, V0 / np.where(M0 > 0, M0, 1.0), scale), 1e-300) * 2.0
+        X_hi, k_hi = solve(allidx, t_hi, X_lo)
+        r_hi, _, M_hi = resid(X_hi, allidx, t_hi)
+        for _ in range(80):
+            grow = np.flatnonzero(r_hi >= 0)
+            if grow.size == 0:
+                break
+            t_lo[grow], X_lo[grow], r_lo[grow], k_lo[grow] = t_hi[grow], X_hi[grow], r_hi[grow], k_hi[grow]
+            t_hi[grow] *= 8.0
+            Xg, kg = solve(grow, t_hi[grow], X_hi[grow])
+            X_hi[grow], k_hi[grow] = Xg, kg
+            r_hi[grow], _, M_hi[grow] = resid(Xg, grow, t_hi[grow])
+        bad = r_hi >= 0
+        if np.any(bad):
+            d = int(np.flatnonzero(bad)[0])
+            raise InfeasibleError(
+                f"rule '{self.name}': no portfolio within the tracking-error limit has an "
+                f"expected return above the risk-free rate {self.risk_free:.6g}"
+                + ("" if single else f" (draw {d})") + "; the maximum Sharpe ratio is not defined")
+        done = np.abs(r_lo) <= 1e-13 * np.maximum(V0, 1e-300)
+        X_hi[done], k_hi[done], t_hi[done] = X_lo[done], k_lo[done], t_lo[done]
+        for it in range(200):
+            todo = np.flatnonzero(~done)
+            if todo.size == 0:
+                break
+            a = X_lo[todo]
+            b = X_hi[todo] - a
+            ta, dt = t_lo[todo], t_hi[todo] - t_lo[todo]
+            Sa = np.einsum("dij,dj->di", covs[todo], a)
+            Sb = np.einsum("dij,dj->di", covs[todo], b)
+            ma = np.einsum("dn,dn->d", mu[todo], a)
+            mb = np.einsum("dn,dn->d", mu[todo], b)
+            # r(s) = (a + s b)'S(a + s b) - (ta + s dt)(ma + s mb)
+            q2 = np.einsum("dn,dn->d", b, Sb) - dt * mb
+            q1 = 2.0 * np.einsum("dn,dn->d", a, Sb) - ta * mb - dt * ma
+            q0 = np.einsum("dn,dn->d", a, Sa) - ta * ma
+            s = _root_bracketed(q2, q1, q0)
+            if it % 3 == 2:
+                s = np.full(todo.size, 0.5)
+            if it >= 12:
+                s = np.clip(s, 1e-3, 1.0 - 1e-3)
+            tn = ta + s * dt
+            Xn, kn = solve(todo, tn, X_hi[todo])
+            rn, Vn, _ = resid(Xn, todo, tn)
+            hit = np.abs(rn) <= 1e-12 * np.maximum(Vn, 1e-300)
+            tiny = dt <= 1e-14 * np.maximum(t_hi[todo], 1e-300)
+            up = rn > 0
+            g = todo[up]
+            t_lo[g], X_lo[g], r_lo[g], k_lo[g] = tn[up], Xn[up], rn[up], kn[up]
+            g = todo[~up]
+            t_hi[g], X_hi[g], r_hi[g], k_hi[g] = tn[~up], Xn[~up], rn[~up], kn[~up]
+            g = todo[hit & up]
+            X_hi[g], k_hi[g], t_hi[g] = X_lo[g], k_lo[g], t_lo[g]
+            done[todo[hit | tiny]] = True
+        if not np.all(done):   # pragma: no cover - the bracket always shrinks
+            raise RuntimeError(f"rule '{self.name}': maximum-Sharpe search did not converge")
+        return X_hi, k_hi, None
 
     def tracking_multiplier(self, mean, covariance) -> float:
         """The multiplier ``eta >= 0`` of the tracking-error constraint at the solution
@@ -791,6 +962,25 @@ def _root_01(qa, qb, qc):
     return np.where(np.isfinite(s), s, 0.5)
 
 
+def _root_bracketed(q2, q1, q0):
+    """A root in [0, 1] of ``q2 s^2 + q1 s + q0`` with ``q(0) > 0 >= q(1)`` (any
+    curvature); 0.5 where round-off leaves none. Shapes (D,)."""
+    out = np.full(q0.shape, 0.5)
+    lin = np.abs(q2) <= 1e-14 * (np.abs(q1) + np.abs(q0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        s_lin = -q0 / q1
+        disc = np.sqrt(np.maximum(q1 * q1 - 4.0 * q2 * q0, 0.0))
+        # the two roots, written without cancellation
+        big = -(q1 + np.copysign(disc, q1)) / 2.0
+        r1 = big / q2
+        r2 = q0 / big
+    for cand in (r2, r1):
+        ok = ~lin & np.isfinite(cand) & (cand >= 0.0) & (cand <= 1.0)
+        out = np.where(ok & (out == 0.5), cand, out)
+    ok = lin & np.isfinite(s_lin) & (s_lin >= 0) & (s_lin <= 1)
+    return np.where(ok, s_lin, out)
+
+
 def tracking_error(weights, policy, covariance) -> np.ndarray:
     """Tracking error ``sqrt((w - p)' Sigma (w - p))`` of weights against a policy.
 
@@ -829,7 +1019,7 @@ def _te_multiplier(rule, mu, S, w) -> float:
     H, c, A, lo, hi, lb, ub = rule._qp_problem(mu[None, :], S[None])
     H, c, A, lo, hi = H[0], c[0], np.asarray(A[0]), np.asarray(lo[0]), np.asarray(hi[0])
     grad = H @ w - c
-    cols, signs_free = [], []
+    cols = []
     n = w.size
     tol = 1e-9
     for i in range(n):
@@ -951,7 +1141,7 @@ def make_rule(name: str, type: str, params: Optional[Mapping] = None, assets=Non
         ``sqrt(periods_per_year)``).
 
     ``fixed`` takes ``weights`` ({asset: weight}; assets left out hold 0). The
-    ``min-variance``, ``mean-variance`` and ``target-return`` types take
+    ``min-variance``, ``mean-variance``, ``target-return`` and ``max-sharpe`` types take
     ``max_tracking_error`` (>= 0) and ``tracking_error_units`` (``"per period"`` by
     default, or ``"annualised"``).
 

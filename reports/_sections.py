@@ -164,15 +164,83 @@ def _verdict_section(run: RunFolder, v: Verdict) -> Section:
             first_column_is_label=False))
     if v.proposed is not None:
         blocks.append(_allocation_table(run, v.proposed))
+    if v.policy is not None:
+        pstyle = {"pass": "answer-pass", "fail": "answer-fail", "open": "answer-open"}[v.policy_status]
+        blocks.append(Para(f"Is it better than the portfolio held today (the policy, "
+                           f"'{v.policy}'), once the move is paid for?", "lead"))
+        blocks.append(Para(v.policy_answer, pstyle))
+        prow = []
+        for c in v.policy_criteria:
+            result = {"pass": "PASS", "fail": "FAIL", "na": "NOT ASSESSED"}[c.status]
+            prow.append((text_cell(c.number), text_cell(c.label), c.measured, text_cell(c.threshold),
+                         text_cell(result, status=c.status)))
+        notes = sorted({c.note for c in v.policy_criteria if c.note})
+        blocks.append(Table(
+            key="verdict_policy_criteria",
+            caption="The same questions against the policy, with the cost of moving",
+            columns=("#", "Criterion", "Measured", "Threshold", "Result"), rows=tuple(prow),
+            note=("Thresholds as for 1/N (min_prob_beats_equal_weight, significance). "
+                  + (" ".join(f"Not assessed because {n}." for n in notes) if notes else "")),
+            first_column_is_label=False))
+        t = _transition_table(run, v.policy)
+        if t is not None:
+            blocks.append(t)
     blocks.append(Para("All simulated and backtested figures in this pack are hypothetical. The pack "
                        "is decision support, not investment advice; see section 9.", "note"))
     return Section(1, "verdict", "Verdict", tuple(blocks), hypothetical=True)
 
 
+def _transition_table(run: RunFolder, held: str) -> Optional[Table]:
+    """Moving from the policy to each rule's in-sample allocation (summary ``transition``)."""
+    rows = []
+    for n in _rule_order(run):
+        if n == held or not isinstance(dig(run.rules[n], "transition"), dict):
+            continue
+        T = ("rules", n, "transition")
+        be = dig(run.rules[n], "transition", "break_even_periods")
+        be_cell = (text_cell("never") if be == "never"
+                   else cell(run, T + ("break_even_periods",), fmt="num1"))
+        te_key = ("tracking_error_population" if as_float(dig(run.rules[n], "transition",
+                                                              "tracking_error_population")) is not None
+                  else "tracking_error_in_sample")
+        rows.append((text_cell(_label(n)),
+                     cell(run, T + ("turnover",), fmt="pct1"),
+                     cell(run, T + ("cost",), fmt="bp1"),
+                     cell(run, T + ("ceq_gain_per_period_in_sample",), op="ann_mean", fmt="pct2"),
+                     cell(run, T + ("ceq_gain_per_period_population",), op="ann_mean", fmt="pct2"),
+                     be_cell,
+                     cell(run, T + (te_key,), op="ann_vol", fmt="pct2")))
+    if not rows:
+        return None
+    notes = dig(run.summary, "transition", "notes") or []
+    bps = dig(run.summary, "transition", "cost_bps")
+    bps_text = (f"{fmt_value(as_float(bps), 'num1')} bp" if as_float(bps) is not None
+                else "per-asset basis points (see the backtest settings)")
+    return Table(
+        key="verdict_transition",
+        caption=f"Cost of moving from the policy ('{held}') to each rule, beside the expected gain",
+        columns=("Rule", "Turnover", "Cost", "CEQ gain in-sample (ann.)",
+                 "CEQ gain population (ann.)", "Break-even (periods)", "Tracking error (ann.)"),
+        rows=tuple(rows),
+        note=("Turnover: sum of |rule weight - policy weight| over assets, plus the change in cash. "
+              f"Cost: turnover of the risky assets at {bps_text} (cash trades free), as a share of "
+              "wealth. CEQ gain: the rule's CEQ minus the policy's, in-sample under the study's "
+              "estimates and in the population as the mean over the synthetic histories. "
+              "Break-even: cost divided by the expected gain per period (population when "
+              "resampling ran, else in-sample); 'never' when the gain is not positive. Tracking "
+              "error: sqrt((w - p)' Sigma (w - p)) of the in-sample allocation under the population "
+              "covariance (else the estimated one), annualised. " + " ".join(notes)))
+
+
 def _allocation_table(run: RunFolder, name: str) -> Table:
+    from ._verdict import policy_rule
+
     assets = run.assets
     rule = run.rules[name]
     has_ew = EQUAL_WEIGHT in run.rules
+    held = policy_rule(run)
+    if held == name:
+        held = None
     rows = []
     for a in assets:
         ins = cell(run, ("rules", name, "in_sample_weights", a), fmt="pct1")
@@ -185,22 +253,31 @@ def _allocation_table(run: RunFolder, name: str) -> Table:
             ew = Cell(text=fmt_value(1 / len(assets), "pct1"), value=1 / len(assets), numeric=True)
         lo = cell(run, ("rules", name, "weights", a, "p5"), fmt="pct1")
         hi = cell(run, ("rules", name, "weights", a, "p95"), fmt="pct1")
-        rows.append((text_cell(a), ins, avg, ew, lo, hi))
+        row = (text_cell(a), ins, avg, ew, lo, hi)
+        if held is not None:
+            row = row + (cell(run, ("rules", held, "in_sample_weights", a), fmt="pct1"),)
+        rows.append(row)
     cash = as_float(dig(rule, "in_sample_cash"))
-    if cash is not None and abs(cash) > 5e-4:
-        rows.append((text_cell("Cash (risk-free)"),
-                     cell(run, ("rules", name, "in_sample_cash"), fmt="pct1"),
-                     cell(run, ("rules", name, "resampled_allocation", "cash"), fmt="pct1"),
-                     Cell(text=fmt_value(0.0, "pct1"), value=0.0, numeric=True),
-                     text_cell(""), text_cell("")))
+    pcash = None if held is None else as_float(dig(run.rules[held], "in_sample_cash"))
+    if (cash is not None and abs(cash) > 5e-4) or (pcash is not None and abs(pcash) > 5e-4):
+        row = (text_cell("Cash (risk-free)"),
+               cell(run, ("rules", name, "in_sample_cash"), fmt="pct1"),
+               cell(run, ("rules", name, "resampled_allocation", "cash"), fmt="pct1"),
+               Cell(text=fmt_value(0.0, "pct1"), value=0.0, numeric=True),
+               text_cell(""), text_cell(""))
+        if held is not None:
+            row = row + (cell(run, ("rules", held, "in_sample_cash"), fmt="pct1"),)
+        rows.append(row)
     columns = ("Asset", "Proposed (in-sample)", "Resampled (averaged)", "1/N",
                "5th pct over draws", "95th pct over draws")
+    if held is not None:
+        columns = columns + (f"Policy held ('{held}')",)
     note = ("Proposed: the rule applied to the full history. Resampled (averaged): the mean of "
             "the rule's allocations over the synthetic histories. Percentiles: the spread of the "
             "rule's weight across those histories.")
     # drop the resampling columns when the run has none (e.g. no [resample] section)
     keep = [i for i in range(len(columns))
-            if i in (0, 1, 3) or any(r[i].text not in ("n/a", "") for r in rows)]
+            if i in (0, 1, 3, 6) or any(r[i].text not in ("n/a", "") for r in rows)]
     if len(keep) < len(columns):
         columns = tuple(columns[i] for i in keep)
         rows = [tuple(r[i] for i in keep) for r in rows]
@@ -209,7 +286,8 @@ def _allocation_table(run: RunFolder, name: str) -> Table:
                 f"allocation and the weight percentiles are not available: {why}.")
     return Table(
         key="verdict_allocation",
-        caption=f"Proposed allocation ('{name}') beside the resampled (averaged) allocation and 1/N",
+        caption=(f"Proposed allocation ('{name}') beside the resampled (averaged) allocation and 1/N"
+                 + (f", and the policy held today ('{held}')" if held is not None else "")),
         columns=columns, rows=tuple(rows), note=note)
 
 
@@ -510,6 +588,12 @@ def _cost_section(run: RunFolder) -> Section:
                    "the risk aversion times the variance. The loss against the optimum is the cost of "
                    "estimation error; the comparison with 1/N shows whether optimising was worth it.",
                    "body")]
+    from ._verdict import policy_rule
+
+    held = policy_rule(run)
+    if held is not None and not any(as_float(dig(run.rules[n], "population", "prob_beats_policy_ceq"))
+                                    is not None for n in names):
+        held = None
     rows = []
     for n in names:
         P = ("rules", n, "population")
@@ -527,16 +611,31 @@ def _cost_section(run: RunFolder) -> Section:
                      *((text_cell("reference"), text_cell("reference")) if n == EQUAL_WEIGHT else
                        (cell(run, P + ("prob_beats_equal_weight_ceq",), fmt="pct1"),
                         cell(run, P + ("prob_beats_equal_weight_sharpe",), fmt="pct1")))))
+        if held is not None:
+            rows[-1] = rows[-1] + ((text_cell("policy"), text_cell("policy"), text_cell("policy"))
+                                   if n == held else
+                                   (cell(run, P + ("prob_beats_policy_ceq",), fmt="pct1"),
+                                    cell(run, P + ("prob_beats_policy_sharpe",), fmt="pct1"),
+                                    cell(run, P + ("tracking_error_vs_policy_mean",), op="ann_vol",
+                                         fmt="pct2")))
+    columns = ("Rule", "Expected return", "Volatility", "Sharpe ratio", "CEQ", "CEQ MC s.e.",
+               "Optimum CEQ", "CEQ loss vs optimum", "Beats 1/N on CEQ", "Beats 1/N on Sharpe")
+    if held is not None:
+        columns = columns + ("Beats policy on CEQ", "Beats policy on Sharpe",
+                             "Tracking error vs policy (ann.)")
     blocks.append(Table(
         key="cost_population", caption="Population scores of the per-draw allocations (means over draws, annualised)",
-        columns=("Rule", "Expected return", "Volatility", "Sharpe ratio", "CEQ", "CEQ MC s.e.",
-                 "Optimum CEQ", "CEQ loss vs optimum", "Beats 1/N on CEQ", "Beats 1/N on Sharpe"),
+        columns=columns,
         rows=tuple(rows),
         note=("Annualised: means and CEQ x periods per year, volatility and Sharpe x square root of "
               "periods per year. Volatility is the mean over draws of each allocation's population "
               "volatility. MC s.e.: Monte Carlo standard error of the mean over draws. 'Beats 1/N': "
               "share of draws in which the rule's allocation scores higher than 1/N under the "
-              "population.")))
+              "population."
+              + (f" 'Beats policy': the same against the policy held today ('{held}'), drawn "
+                 "from the same synthetic history. Tracking error vs policy: mean over draws of "
+                 "sqrt((w - p)' Sigma (w - p)) under the population covariance, annualised."
+                 if held is not None else ""))))
     blocks.append(_fig("fig_cost", "Population CEQ and Sharpe ratio of the per-draw allocations "
                        "(hypothetical, simulated; annualised)", _cost_figure(run, names)))
     att = _attribution(run)
@@ -815,6 +914,32 @@ def _backtest_section(run: RunFolder) -> Section:
                   "Lopez de Prado 2014). Min. track record: the history needed for the observed "
                   "Sharpe ratio to be above zero with 95% confidence (Bailey & Lopez de Prado 2012). "
                   "p-values are two-sided, 3 decimals.")))
+    from ._verdict import policy_rule
+
+    held = policy_rule(run)
+    prow = []
+    for n in names:
+        node = run.rules[n].get("backtest") or {}
+        if held is None or n == held or "sharpe_diff_policy" not in node:
+            continue
+        B = ("rules", n, "backtest")
+        prow.append((text_cell(n),
+                     cell(run, B + ("sharpe_diff_policy",), op="ann_sharpe", fmt="snum3"),
+                     cell(run, B + ("sharpe_diff_policy_p_jkm",), fmt="pval"),
+                     cell(run, B + ("sharpe_diff_policy_p_lw",), fmt="pval"),
+                     cell(run, B + ("ceq_diff_policy",), op="ann_mean", fmt="pct2"),
+                     cell(run, B + ("ceq_diff_policy_p",), fmt="pval"),
+                     cell(run, B + ("tracking_error_vs_policy",), op="ann_vol", fmt="pct2")))
+    if prow:
+        blocks.append(Table(
+            key="backtest_tests_policy", caption=f"Tests against the policy held today ('{held}')",
+            columns=("Rule", "Sharpe diff. (ann.)", "p (JKM)", "p (LW boot.)", "CEQ diff. (ann.)",
+                     "p (CEQ)", "Tracking error (ann.)"),
+            rows=tuple(prow),
+            note=("Differences are the rule minus the policy, with the same tests as against 1/N. "
+                  "Tracking error: standard deviation of the per-period differences between the "
+                  "rule's and the policy's net returns, times the square root of periods per "
+                  "year.")))
     return Section(7, "backtest", "Out-of-sample backtest", tuple(blocks), True)
 
 

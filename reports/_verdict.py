@@ -15,6 +15,13 @@ Three stated criteria, each read from the run's summary (nothing is recomputed):
 
 A criterion whose inputs are absent (resampling or backtest skipped) is "not assessed" and
 says why; it neither passes nor fails.
+
+When the study names a policy (the allocation held today, top-level ``policy``), the
+proposal is the first rule that is neither 1/N nor the policy, and the verdict also answers
+"is it better than the policy?" with the same thresholds: the share of draws beating the
+policy on population CEQ, the backtest Sharpe difference against the policy and its
+p-value, and whether the expected CEQ gain pays for the transition cost in a finite number
+of periods (see ``_against_policy``).
 """
 from __future__ import annotations
 
@@ -25,7 +32,8 @@ from typing import Optional
 from ._model import Cell, cell, fmt_value
 from ._run import RunFolder, as_float, dig
 
-__all__ = ["DEFAULTS", "Criterion", "Verdict", "verdict_settings", "proposed_rule", "evaluate"]
+__all__ = ["DEFAULTS", "Criterion", "Verdict", "verdict_settings", "proposed_rule", "policy_rule",
+           "evaluate"]
 
 #: Defaults of the study file's ``[verdict]`` table (kept equal to
 #: ``noiseproof.studyfile.VerdictSettings``; a test checks it).
@@ -82,11 +90,12 @@ def verdict_settings(run: RunFolder) -> tuple[dict, dict]:
     return settings, sources
 
 
-def proposed_rule(run: RunFolder) -> Optional[str]:
-    """The rule the verdict is about: the named policy, else the first rule that is not 1/N."""
+def policy_rule(run: RunFolder) -> Optional[str]:
+    """The allocation held today: the rule the study names with the top-level ``policy``
+    key (from the summary, else the study text in the manifest), or None."""
     rules = run.rules
     for candidate in (dig(run.summary, "policy"), dig(run.summary, "study", "policy"),
-                      dig(run.summary, "verdict", "proposed")):
+                      dig(run.summary, "verdict", "policy")):
         if isinstance(candidate, str) and candidate in rules:
             return candidate
     text = dig(run.manifest, "study_text") or dig(run.manifest, "study", "text")
@@ -97,8 +106,19 @@ def proposed_rule(run: RunFolder) -> Optional[str]:
             policy = None
         if isinstance(policy, str) and policy in rules:
             return policy
+    return None
+
+
+def proposed_rule(run: RunFolder) -> Optional[str]:
+    """The rule the verdict is about: the summary's ``verdict.proposed``, else the first
+    rule that is neither 1/N nor the policy (the allocation held today)."""
+    rules = run.rules
+    held = policy_rule(run)
+    candidate = dig(run.summary, "verdict", "proposed")
+    if isinstance(candidate, str) and candidate in rules and candidate != held:
+        return candidate
     for name, rule in rules.items():
-        if name != EQUAL_WEIGHT and rule.get("type") != EQUAL_WEIGHT:
+        if name != EQUAL_WEIGHT and rule.get("type") != EQUAL_WEIGHT and name != held:
             return name
     return None
 
@@ -124,6 +144,10 @@ class Verdict:
     groups: tuple        # ((title, status, reason, finding), ...) one per stated criterion
     answer: str
     status: str          # "pass" | "fail" | "open"
+    policy: Optional[str] = None
+    policy_criteria: tuple = ()   # of Criterion: the same questions against the policy
+    policy_answer: str = ""
+    policy_status: str = "open"
 
 
 def _status(ok: Optional[bool]) -> str:
@@ -247,4 +271,104 @@ def evaluate(run: RunFolder) -> Verdict:
         status = "pass"
         head = f"Yes. The proposed allocation ('{name}') passes all {len(groups)} stated criteria"
     answer = f"{head}: {findings}."
-    return Verdict(name, settings, sources, tuple(rows), tuple(groups), answer, status)
+    held = policy_rule(run)
+    if held is None:
+        return Verdict(name, settings, sources, tuple(rows), tuple(groups), answer, status)
+    prow, panswer, pstatus = _against_policy(run, name, held, settings, resample_skip,
+                                             backtest_skip)
+    return Verdict(name, settings, sources, tuple(rows), tuple(groups), answer, status,
+                   held, prow, panswer, pstatus)
+
+
+def _against_policy(run: RunFolder, name: str, held: str, settings: dict, resample_skip,
+                    backtest_skip):
+    """Is the proposal better than the policy held today, once the move is paid for?
+
+    1. the share of draws in which the proposal beats the policy on population CEQ is at
+       least ``min_prob_beats_equal_weight`` (the same threshold as against 1/N);
+    2. its backtest Sharpe ratio is above the policy's with a difference p-value at most
+       ``significance`` (Ledoit-Wolf bootstrap, else Jobson-Korkie-Memmel);
+    3. the expected CEQ gain over the policy pays back the transition cost in a finite
+       number of periods (break-even horizon from the summary's ``transition``).
+    """
+    rows, groups = [], []
+    prob_min = settings["min_prob_beats_equal_weight"]
+    alpha = settings["significance"]
+    rule = run.rules[name]
+    c = cell(run, ("rules", name, "population", "prob_beats_policy_ceq"), fmt="pct1")
+    ok = None if c.value is None else c.value >= prob_min - 1e-12
+    why = resample_skip or ("" if c.value is not None else "the run has no comparison with the policy under the population")
+    rows.append(Criterion("P1", f"Share of draws beating the policy ('{held}') on population CEQ", c,
+                          f"at least {fmt_value(prob_min, 'pct1')}", _status(ok), why))
+    if ok is None:
+        groups.append(("na", f"the comparison with the policy under the population could not be assessed ({why})"))
+    else:
+        groups.append((_status(ok), f"it beats the policy on population CEQ in {c.text} of draws "
+                                    f"(at least {fmt_value(prob_min, 'pct1')} required)"))
+    bt = dig(rule, "backtest")
+    bt_skip = backtest_skip or _skipped(bt)
+    diff = cell(run, ("rules", name, "backtest", "sharpe_diff_policy"), op="ann_sharpe", fmt="snum3")
+    p_key = ("sharpe_diff_policy_p_lw" if as_float(dig(bt, "sharpe_diff_policy_p_lw")) is not None
+             else "sharpe_diff_policy_p_jkm")
+    p_label = "Ledoit-Wolf bootstrap" if p_key.endswith("lw") else "Jobson-Korkie-Memmel"
+    pc = cell(run, ("rules", name, "backtest", p_key), fmt="pval")
+    oks = [None if diff.value is None else diff.value > 0,
+           None if pc.value is None else pc.value <= alpha + 1e-12]
+    why = bt_skip or ("" if all(o is not None for o in oks)
+                      else "the backtest has no comparison with the policy")
+    rows.append(Criterion("P2a", "Backtest Sharpe ratio minus the policy's (annualised)", diff,
+                          "above 0", _status(oks[0]), why))
+    rows.append(Criterion("P2b", f"p-value of that difference ({p_label})", pc,
+                          f"at most {fmt_value(alpha, 'num3')}", _status(oks[1]), why))
+    if any(o is None for o in oks):
+        groups.append(("na", f"the out-of-sample comparison with the policy could not be assessed ({why})"))
+    elif all(oks):
+        groups.append(("pass", f"out of sample its Sharpe ratio is significantly above the policy's "
+                               f"({diff.text} annualised, p = {pc.text})"))
+    else:
+        groups.append(("fail", f"out of sample its Sharpe ratio is not significantly above the "
+                               f"policy's ({diff.text} annualised, p = {pc.text})"))
+    T = ("rules", name, "transition")
+    tr = dig(rule, "transition")
+    be_raw = dig(tr, "break_even_periods")
+    cost = cell(run, T + ("cost",), fmt="bp1")
+    turn = cell(run, T + ("turnover",), fmt="pct1")
+    gain = cell(run, T + ("ceq_gain_per_period",), fmt="bp1")
+    if be_raw == "never":
+        measured = Cell(text="never", value=None)
+        ok = False
+    else:
+        measured = cell(run, T + ("break_even_periods",), fmt="num1")
+        ok = None if measured.value is None else True
+    why = "" if ok is not None else "the run has no transition cost (no policy in the study)"
+    basis = dig(tr, "break_even_basis")
+    basis_text = {"population": "population", "in_sample": "in-sample"}.get(basis, "expected")
+    rows.append(Criterion("P3", f"Periods of {basis_text} CEQ gain that pay for the move "
+                          f"(turnover {turn.text}, cost {cost.text})", measured,
+                          "finite (gain above 0)", _status(ok), why))
+    if ok is None:
+        groups.append(("na", f"the transition cost could not be weighed ({why})"))
+    elif ok:
+        groups.append(("pass", f"moving costs {cost.text} of wealth (turnover {turn.text}) and the "
+                               f"{basis_text} CEQ gain of {gain.text} a period pays for it in "
+                               f"{measured.text} periods"))
+    else:
+        groups.append(("fail", f"moving costs {cost.text} of wealth (turnover {turn.text}) and the "
+                               f"{basis_text} CEQ gain of {gain.text} a period never pays for it"))
+    failed = [g for g in groups if g[0] == "fail"]
+    open_ = [g for g in groups if g[0] == "na"]
+    findings = "; ".join(g[1] for g in groups)
+    if failed:
+        status = "fail"
+        head = (f"No. Against the policy held today ('{held}'), the proposed allocation ('{name}') "
+                f"fails {len(failed)} of {len(groups)} criteria")
+    elif open_:
+        status = "open"
+        head = (f"Not established. Against the policy held today ('{held}'), the proposed "
+                f"allocation ('{name}') passes every criterion that could be assessed, but "
+                f"{len(open_)} of {len(groups)} could not be")
+    else:
+        status = "pass"
+        head = (f"Yes. Against the policy held today ('{held}'), the proposed allocation "
+                f"('{name}') passes all {len(groups)} criteria")
+    return tuple(rows), f"{head}: {findings}.", status

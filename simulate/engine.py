@@ -155,6 +155,11 @@ class ResampleSpec:
     metric_sample : int
         Per-draw population metrics are kept for the first ``metric_sample`` draws, for
         the distribution tables (means and errors use all draws).
+    policy : str or None
+        Name of the rule the study holds today (the policy). When given, every rule is
+        also compared with it draw by draw: the share of draws beating it on population
+        CEQ and Sharpe ratio, and the population tracking error against it,
+        ``sqrt((w - p)' Sigma (w - p))`` with both allocations from the same draw.
     """
 
     population_mean: np.ndarray
@@ -185,6 +190,7 @@ class ResampleSpec:
     population_source: str = ""
     degrees_of_freedom_fitted: bool = False
     block_length_automatic: bool = False
+    policy: Optional[str] = None
 
     # ---- derived, deterministic -------------------------------------------------------
     @property
@@ -238,6 +244,8 @@ class ResampleSpec:
                 list(self.sweep_lengths), self.sweep_draws, self.attribution,
                 self.hold_threshold, self.draw, self.self_check_draws, self.metric_sample,
                 CHUNK_DRAWS]
+        if self.policy is not None:    # appended only when set: older fingerprints hold
+            meta.append(["policy", self.policy])
         h.update(json.dumps(meta, default=str).encode())
         return h.hexdigest()
 
@@ -293,6 +301,8 @@ def _spec_iv(spec: ResampleSpec) -> None:
         h = np.asarray(spec.history)
         if h.ndim != 2 or h.shape[1] != n or not np.all(np.isfinite(h)):
             raise DataError(f"the history must be a finite (T, {n}) array")
+    if spec.policy is not None and spec.policy not in names:
+        raise SettingsError(f"policy {spec.policy!r} names no rule")
     if spec.frontier_rule is not None and spec.frontier_rule not in names:
         raise SettingsError(f"frontier rule {spec.frontier_rule!r} names no rule")
     draw_path(spec, spec.length)          # raises when draw = "moments" cannot be honoured
@@ -573,6 +583,7 @@ class _Context:
         self.n = self.mu.shape[0]
         self.rules = spec.rules
         self.ew = spec.rule_names.index("equal-weight")
+        self.pol = None if spec.policy is None else spec.rule_names.index(spec.policy)
         self._gen = None
         self._check_gen = None
         self.hists = [_histogram_for(r) for r in spec.rules]
@@ -927,6 +938,14 @@ def _beats(metrics, ew):
                          (metrics[:, :, 3] > ew[:, None, 3] + tol_sh).sum(axis=0)], axis=1)
 
 
+def _tracking_errors(weights, policy, cov):
+    """(d, R) population tracking errors ``sqrt((w - p)' Sigma (w - p))`` of (d, R, N)
+    weights against the (d, N) policy weights of the same draws (NaN where either failed)."""
+    diff = weights - policy[:, None, :]
+    v = np.einsum("drn,drn->dr", diff @ cov, diff)
+    return np.sqrt(np.maximum(v, 0.0))
+
+
 class _MainAccumulator(_Accumulator):
     def add_chunk(self, histories, first_draw):
         ctx, spec = self.ctx, self.ctx.spec
@@ -950,6 +969,9 @@ class _MainAccumulator(_Accumulator):
         with np.errstate(invalid="ignore"):
             self._count("held", (np.abs(weights) > spec.hold_threshold).sum(axis=0))
         self._count("beats", _beats(metrics, metrics[:, ctx.ew]))
+        if ctx.pol is not None:
+            self._count("beats_policy", _beats(metrics, metrics[:, ctx.pol]))
+            self._moments("te", _tracking_errors(weights, weights[:, ctx.pol], ctx.cov))
         for i, h in enumerate(ctx.hists):
             counts = self.counts.setdefault(f"hist{i}", np.zeros((ctx.n, h.n_columns), np.int64))
             _kernels.bin_counts(np.ascontiguousarray(weights[ok[:, i], i]), h.low, h.width,
@@ -1067,6 +1089,8 @@ class _SweepAccumulator(_Accumulator):
         self._count("ok", ok.sum(axis=0))
         self._moments("m", metrics)
         self._count("beats", _beats(metrics, metrics[:, ctx.ew]))
+        if ctx.pol is not None:
+            self._count("beats_policy", _beats(metrics, metrics[:, ctx.pol]))
 
 
 class _CheckAccumulator(_Accumulator):
@@ -1290,6 +1314,9 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
     c_mean, c_sd, _ = moments_mean_sd_se(tot["cash"])          # (R,)
     a_mean, a_sd, a_se = moments_mean_sd_se(tot["att"])        # (R, 2, 5)
     beats = cnt["beats"] / n                                                    # (R, 2)
+    if ctx.pol is not None:
+        beats_pol = cnt["beats_policy"] / n                                     # (R, 2)
+        te_mean, te_sd, te_se = moments_mean_sd_se(tot["te"])                   # (R,)
     wmin, wmax = main["extrema"]["wmin"], main["extrema"]["wmax"]
     for i, rs in enumerate(spec.rules):
         if ok[i] == 0:
@@ -1343,6 +1370,20 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
             pop["failure_note"] = main["notes"].get(rs.name)
         ew_ceq = float(m_mean[ctx.ew, 4])
         pop["ceq_gain_vs_equal_weight"] = float(m_mean[i, 4] - ew_ceq)
+        if ctx.pol is not None:
+            is_pol = i == ctx.pol
+            for k, key in ((0, "ceq"), (1, "sharpe")):
+                p = float(beats_pol[i, k])
+                pop[f"prob_beats_policy_{key}"] = None if is_pol else p
+                pop[f"prob_beats_policy_{key}_se"] = (None if is_pol else
+                                                      math.sqrt(p * (1 - p) / n))
+            pop["ceq_gain_vs_policy"] = float(m_mean[i, 4] - m_mean[ctx.pol, 4])
+            pop["ceq_gain_vs_policy_annualised"] = pop["ceq_gain_vs_policy"] * ppy
+            pop["sharpe_gain_vs_policy"] = float(m_mean[i, 3] - m_mean[ctx.pol, 3])
+            pop["tracking_error_vs_policy_mean"] = float(te_mean[i])
+            pop["tracking_error_vs_policy_sd"] = float(te_sd[i])
+            pop["tracking_error_vs_policy_se"] = float(te_se[i])
+            pop["tracking_error_vs_policy_mean_annualised"] = float(te_mean[i]) * math.sqrt(ppy)
         pop["ceq_loss_vs_optimum"] = float(opt_m[4] - m_mean[i, 4])
         pop["ceq_loss_vs_optimum_annualised"] = pop["ceq_loss_vs_optimum"] * ppy
         optimum = {"weights": dict(zip(assets, map(float, opt_w))),
@@ -1460,6 +1501,12 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
                 pb = float(p["counts"]["beats"][i, 0] / ns) if ok and i != ctx.ew else None
                 ps = float(p["counts"]["beats"][i, 1] / ns) if ok and i != ctx.ew else None
                 d = per_rule[name]
+                if ctx.pol is not None:
+                    mine = ok and i != ctx.pol and valid[ctx.pol]
+                    qb = float(p["counts"]["beats_policy"][i, 0] / ns) if mine else None
+                    qs = float(p["counts"]["beats_policy"][i, 1] / ns) if mine else None
+                    d.setdefault("prob_beats_policy_ceq", []).append(qb)
+                    d.setdefault("prob_beats_policy_sharpe", []).append(qs)
                 d["lengths"].append(int(t))
                 d["years"].append(float(t) / ppy)
                 d["prob_beats_equal_weight_ceq"].append(pb)
@@ -1473,6 +1520,9 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
                               "ceq_se": float(sse[i, 4]) if ok else None,
                               "too_short": not ok,
                               "draws_failed": int(ns - p["counts"]["ok"][i]) if ok else None})
+                if ctx.pol is not None:
+                    srows[-1]["prob_beats_policy_ceq"] = qb
+                    srows[-1]["prob_beats_policy_sharpe"] = qs
         for i, name in enumerate(names):
             d = per_rule[name]
             if i == ctx.ew:
@@ -1536,6 +1586,7 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
                        "volatility": dict(zip(assets, map(float, np.sqrt(np.diag(cov))))),
                        "covariance_divisor": "T" if spec.history is not None else None},
         "equal_weight": _metric_dict(score(ew_w[None], mu, cov, gamma)[0], ppy),
+        "policy": spec.policy,
         "estimators": {rs.name: {"mean": rs.mean, "covariance": rs.covariance}
                        for rs in spec.rules},
         "spec_fingerprint": spec.fingerprint(),

@@ -657,7 +657,8 @@ def test_disk_full_mid_run_stops_cleanly_and_resume_finishes(plan_dir, tmp_path,
 
 
 def test_real_disk_full_on_a_tiny_file_system(plan_dir, tmp_path):
-    """A 64 KiB tmpfs fills up mid-run: clear error, blocks on it intact, resume elsewhere."""
+    """A 64 KiB tmpfs fills up mid-run: clear error, the blocks on it intact and reused by a
+    resume once there is room (the folder copied elsewhere)."""
     mnt = tmp_path / "tiny"
     mnt.mkdir()
     r = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=64k", "tmpfs", str(mnt)],
@@ -680,8 +681,18 @@ def test_real_disk_full_on_a_tiny_file_system(plan_dir, tmp_path):
             fp.setdefault(st, batch.fingerprint(study_settings(plan, s), batch.engine_id(STANDIN)))
             standin_from_bytes(BlockStore(b.parent, fp[st]).read(int(b.stem.split("-")[1])))
         assert not list(out.glob("studies/*/blocks/.block-*"))       # no temporaries left
+        assert not (out / "batch.lock").exists()
+        import shutil
+
+        moved = tmp_path / "moved"                                   # room again: resume
+        shutil.copytree(out, moved)
     finally:
         subprocess.run(["umount", str(mnt)], check=False)
+    res = run_batch(plan, moved, engine=STANDIN, quiet=True, resume=True)
+    assert res.exit_status == 0
+    assert sum(s.blocks - s.computed for s in res.studies) == len(blocks)   # all reused
+    run_batch(plan, tmp_path / "clean", engine=STANDIN, quiet=True)
+    assert _summaries(moved) == _summaries(tmp_path / "clean")
 
 
 def test_unwritable_output_folder_is_one_clear_line_and_status_3(plan_dir, tmp_path, capsys,

@@ -129,7 +129,9 @@ def test_example_study_file_parses_and_points_at_the_data():
     assert names["risk-parity"].type == "equal-risk-contribution"
     assert s.resample.draws == 2000 and s.resample.length == 120 and s.resample.seed == 20261201
     assert s.backtest.window == 120 and s.backtest.rebalance_every == 3 and s.backtest.cost_bps == 10
-    assert s.policy == "proposed"
+    assert s.policy == "current-policy" and names["current-policy"].type == "fixed"
+    assert set(names["current-policy"].params["weights"]) == sleeves
+    assert sum(names["current-policy"].params["weights"].values()) == pytest.approx(1.0, abs=1e-12)
 
 
 def test_example_study_rules_build_when_optimise_exists():
@@ -138,8 +140,11 @@ def test_example_study_rules_build_when_optimise_exists():
         pytest.skip("optimise.make_rule not built yet")
     s = load_study(DATA / "study.toml")
     assets = tuple(x.name for x in model.SLEEVES)
+    pol = next(r for r in s.rules if r.name == s.policy)
+    policy_w = optimise.make_rule(pol.name, pol.type, dict(pol.params), assets).fixed_weights
     for r in s.rules:
-        rule = optimise.make_rule(r.name, r.type, dict(r.params), assets)
+        rule = optimise.make_rule(r.name, r.type, dict(r.params), assets,
+                                  policy_weights=policy_w, periods_per_year=12)
         assert rule.name == r.name
 
 
@@ -179,6 +184,6 @@ def test_demo_calls_the_runner_with_the_study(capsys, tmp_path, monkeypatch):
     monkeypatch.setitem(sys.modules, "noiseproof.runner", types.SimpleNamespace(run_study=fake_run_study))
     rc = main(["demo", "--out", str(tmp_path / "run"), "--workers", "2", "--no-pack"])
     assert rc == 0
-    assert calls["settings"].policy == "proposed" and calls["out"] == tmp_path / "run"
+    assert calls["settings"].policy == "current-policy" and calls["out"] == tmp_path / "run"
     assert calls["workers"] == 2 and calls["pack"] is False and calls["quiet"] is False
     assert calls["argv"][:2] == ["noiseproof", "demo"] and "--no-pack" in calls["argv"]

@@ -218,6 +218,8 @@ def test_single_asset():
             params = {"target": 0.005}
         if t == "target-volatility":
             params = {"target": 0.3}
+        if t == "fixed":
+            params = {"weights": {"only": 1.0}}
         w = make_rule("one", t, params, ("only",)).weights(mu, S).weights
         np.testing.assert_allclose(w, [1.0], atol=1e-14, err_msg=t)
 

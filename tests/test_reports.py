@@ -190,7 +190,7 @@ DEMO = HERE.parent / "demo_market" / "data"
 
 REAL_STUDY = """name = "Pack test: Kestrel Bay trustees (invented)"
 risk_aversion = 5
-policy = "proposed"
+policy = "held"
 
 [data]
 path = "returns.csv"
@@ -210,6 +210,11 @@ risk_aversion = 5
 [[rules]]
 name = "min-variance"
 type = "min-variance"
+
+[[rules]]
+name = "held"
+type = "fixed"
+weights = {{ "Domestic Equity" = 0.4, "Government Bonds" = 0.6 }}
 
 [resample]
 generator = "normal"
@@ -619,6 +624,34 @@ def test_verdict_thresholds_default_to_the_study_file_defaults(tmp_path):
     verdict = " ".join(html.sections["s1"].split())
     assert "at most 20.0%" in verdict                                 # from the study text
     assert "min_prob_beats_equal_weight = 0.500 (default)" in verdict  # named as a default
+
+
+def test_verdict_answers_against_the_policy_with_the_transition_cost(full_run):
+    """The study holds 'held' (a fixed rule): the verdict page answers both questions, and
+    its policy criteria agree with the runner's own assessment in summary.json."""
+    folder, result = full_run
+    s = json.loads((folder / "summary.json").read_text())
+    html = parse_html(result.html)
+    verdict = " ".join(html.sections["s1"].split())
+    assert "Does the proposed allocation survive input noise?" in verdict
+    assert "Is it better than the portfolio held today (the policy, 'held')" in verdict
+    assert "Against the policy held today ('held'), the proposed allocation ('proposed')" in verdict
+    tr = s["rules"]["proposed"]["transition"]
+    assert "%.1f bp" % (tr["cost"] * 1e4) in verdict and "%.1f%%" % (100 * tr["turnover"]) in verdict
+    mine = [c["attrs"]["data-status"] for c in html.cells
+            if c["table"] == "verdict_policy_criteria" and "data-status" in c["attrs"]]
+    theirs = {c["name"]: c["passed"] for c in s["verdict"]["against_policy"]["criteria"]}
+    word = {True: "pass", False: "fail", None: "na"}
+    assert mine[0] == word[theirs["prob_beats_policy_ceq"]]
+    backtest = "fail" if "fail" in mine[1:3] else ("na" if "na" in mine[1:3] else "pass")
+    assert backtest == word[theirs["backtest_sharpe_vs_policy"]]
+    assert mine[3] == word[theirs["transition_pays_back"]]
+    tables = {c["table"] for c in html.cells}
+    assert {"verdict_transition", "backtest_tests_policy"} <= tables
+    # the policy's weights stand beside the proposal in the allocation table
+    held = [c["text"] for c in html.cells if c["table"] == "verdict_allocation"
+            and c["attrs"].get("data-src", "").find('"held"') >= 0]
+    assert "40.0%" in held and "60.0%" in held
 
 
 def test_policy_names_the_proposed_rule(tmp_path):

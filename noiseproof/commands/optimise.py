@@ -27,6 +27,9 @@ rule types (--rule):
   max-sharpe               the largest (w'mu - R) / volatility  (--risk-free R, default 0)
   target-return            least variance with w'mu >= X         (needs --target X)
   target-volatility        largest w'mu with volatility <= X     (needs --target X)
+  fixed                    the weights given with --weight ASSET=W (assets left out hold
+                           0; they must sum to 1 unless --budget cash), shown with their
+                           in-sample figures
 
 constraints: long-only unless --allow-short; fully invested (--budget full) or with a
 cash sleeve earning --risk-free (--budget cash: risky weights may sum to less than 1; with
@@ -48,7 +51,7 @@ investment advice."""
 #: The rule types (kept literal so that ``--help`` does not import numba; a test checks it
 #: equals ``optimise.RULE_TYPES``).
 RULE_TYPES = ("equal-weight", "min-variance", "mean-variance", "max-sharpe", "target-return",
-              "target-volatility", "inverse-volatility", "equal-risk-contribution")
+              "target-volatility", "inverse-volatility", "equal-risk-contribution", "fixed")
 
 
 def register(sub) -> None:
@@ -72,6 +75,8 @@ def register(sub) -> None:
                    help="bounds on one asset's weight, e.g. --bound 'Harbour Bonds=0.1:0.5' (repeatable)")
     p.add_argument("--group", action="append", default=[], metavar="NAME=A,B,C:LOW:HIGH",
                    help="bounds on the summed weight of assets A, B, C (repeatable)")
+    p.add_argument("--weight", action="append", default=[], metavar="ASSET=W",
+                   help="a weight of --rule fixed, as a decimal (repeatable)")
     p.add_argument("--json", action="store_true", help="print the result as JSON")
     p.set_defaults(func=run)
 
@@ -132,6 +137,19 @@ def rule_params(args) -> dict:
         value = getattr(args, flag)
         if value is not None:
             params[key] = value
+    weights = getattr(args, "weight", None) or []
+    if weights and args.rule != "fixed":
+        raise SettingsError(f"--weight applies to --rule fixed, not --rule {args.rule}")
+    if weights:
+        params["weights"] = {}
+        for text in weights:
+            name, eq, value = text.rpartition("=")
+            if not eq or not name:
+                raise SettingsError(f"--weight {text!r}: expected ASSET=W")
+            try:
+                params["weights"][name] = float(value)
+            except ValueError:
+                raise SettingsError(f"--weight {text!r}: {value!r} is not a number") from None
     if args.bound:
         params["bounds"] = dict(_parse_bound(b) for b in args.bound)
     if args.group:
@@ -197,7 +215,7 @@ def summarise(rule, alloc, mean, cov, periods_per_year: int) -> dict:
         "volatility_annualised": vol * math.sqrt(periods_per_year),
         "sharpe_annualised": None if sharpe is None else _num(sharpe * math.sqrt(periods_per_year)),
         "kkt_residual": _num(alloc.kkt) if rule.type not in (
-            "equal-weight", "inverse-volatility") else None,
+            "equal-weight", "inverse-volatility", "fixed") else None,
         "implied_risk_aversion": _num(alloc.implied_risk_aversion),
     }
 
