@@ -999,6 +999,9 @@ def _selfcheck_section(run: RunFolder) -> Section:
     if what:
         blocks.append(Para("Check: " + what + (" (" + ", ".join(detail) + ")" if detail else "") + ".",
                            "note"))
+    setting = str(sc.get("setting") or "")
+    if setting:
+        blocks.append(Para("Draws used for the check: " + setting + ".", "note"))
     blocks.append(Table(key="selfcheck", caption="Closed form against Monte Carlo (per period, not annualised)",
                         columns=("Quantity", "Closed form", "Monte Carlo", "MC s.e.",
                                  "Standardised diff.", "Within 3 s.e."),

@@ -417,9 +417,8 @@ def _self_check_applies(spec: ResampleSpec):
     n, t = spec.n_assets, spec.length
     if spec.self_check_draws <= 0:
         return False, "self_check_draws = 0"
-    if spec.generator != "normal":
-        return False, (f"the closed form is for normal returns; the study's generator is "
-                       f"'{spec.generator}'")
+    # the check always draws normal histories from the population moments: for a study
+    # whose generator is not normal it is a run of the check on the study's own moments
     if t <= n + 4:
         return False, f"the closed form needs T > N + 4 (T = {t}, N = {n})"
     return True, ""
@@ -1562,7 +1561,11 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
             "expected_utility_monte_carlo": float(um), "monte_carlo_se": float(use),
             "standardised_difference": z, "within_3_se": bool(abs(z) < 3.0),
             "optimum_utility": kz.optimum,
-            "draw_path": draw_path(spec, spec.length)[0],
+            "draw_path": ctx.path(Block(0, 0, 0, "check", spec.length, -1)),
+            "generator": "normal",
+            "setting": ("the study's own generator (normal)" if spec.generator == "normal" else
+                        f"normal draws from the study's population moments: the study's "
+                        f"'{spec.generator}' generator has no closed form"),
         }
     else:
         self_check = {"skipped": reason}
