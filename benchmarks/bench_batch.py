@@ -14,8 +14,12 @@ scaling efficiency. It also measures the scheduling overhead per block: the same
 machinery (durable block writes included) driving blocks that compute nothing, with 1
 and with K blocks per task (``--blocks-per-task``, the option that shrinks it).
 
-``python -m benchmarks batch [--quick] [--studies S] [--draws D] [--no-dask]
-[--overhead-blocks B] [--blocks-per-task K]``
+With ``--repeat=R`` the three executors run R times in turn and each keeps its best wall
+time; the ``others`` column is the share of the machine's CPU that other processes used
+during that run (the machine may be shared).
+
+``python -m benchmarks batch [--quick] [--studies=S] [--draws=D] [--no-dask]
+[--overhead-blocks=B] [--blocks-per-task=K] [--repeat=R]``
 """
 from __future__ import annotations
 
@@ -157,6 +161,59 @@ def _overhead(folder: Path, executor, blocks: int, per_task: int) -> float:
     return (time.perf_counter() - t) / blocks
 
 
+# ---------------------------------------------------------------- CPU accounting
+
+def _machine_busy() -> tuple:
+    """(busy, total) CPU seconds of the whole machine so far, from /proc/stat (Linux)."""
+    try:
+        with open("/proc/stat") as f:
+            vals = [int(x) for x in f.readline().split()[1:]]
+    except OSError:
+        return (0.0, 0.0)
+    hz = os.sysconf("SC_CLK_TCK")
+    idle = vals[3] + (vals[4] if len(vals) > 4 else 0)
+    return ((sum(vals) - idle) / hz, sum(vals) / hz)
+
+
+def _tree_cpu() -> float:
+    """CPU seconds used so far by this process and its live descendants."""
+    try:
+        import psutil
+    except ImportError:  # pragma: no cover
+        return float("nan")
+    me = psutil.Process()
+    total = 0.0
+    for p in [me] + me.children(recursive=True):
+        try:
+            t = p.cpu_times()
+            total += t.user + t.system
+        except psutil.Error:
+            continue
+    return total
+
+
+class _Phase:
+    """Wall time of a phase, and how much of the machine other people's processes used."""
+
+    def __enter__(self):
+        self.busy0, self.total0 = _machine_busy()
+        self.mine0 = _tree_cpu()
+        self.t0 = time.perf_counter()
+        return self
+
+    def stop(self):
+        """Call before the executor's workers exit (their CPU time is read live)."""
+        self.wall = time.perf_counter() - self.t0
+        busy1, total1 = _machine_busy()
+        mine = _tree_cpu() - self.mine0
+        cores = os.cpu_count() or 1
+        self.others = max(0.0, (busy1 - self.busy0) - mine) / (self.wall * cores)
+        return self
+
+    def __exit__(self, *exc):
+        return False
+
+
 # ---------------------------------------------------------------- main
 
 def main(argv=None) -> int:
@@ -168,6 +225,9 @@ def main(argv=None) -> int:
     ap.add_argument("--periods", type=int, default=120)
     ap.add_argument("--no-dask", action="store_true", help="skip the Dask cluster")
     ap.add_argument("--overhead-blocks", type=int, default=400)
+    ap.add_argument("--repeat", type=int, default=1,
+                    help="run the three executors R times in turn and keep each one's best "
+                         "wall time (the machine is shared: the best run is the least disturbed)")
     ap.add_argument("--blocks-per-task", type=int, default=8,
                     help="K for the grouped-task overhead measurement (default 8)")
     args = ap.parse_args(argv)
@@ -192,57 +252,80 @@ def main(argv=None) -> int:
               f"{load_before[0]:.2f} {load_before[1]:.2f} {load_before[2]:.2f}")
 
         results = {}
-        walls = {}
+        walls: dict = {}
+        others: dict = {}
+        dask_start = None
 
-        t = time.perf_counter()
-        batch.run_batch(plan, work / "one", executor=InlineExecutor(), engine=engine,
-                        quiet=True, pack=False)
-        walls["1 local worker (baseline)"] = time.perf_counter() - t
-        results["one"] = _numbers(work / "one")
+        def keep(name, phase):
+            if name not in walls or phase.wall < walls[name]:
+                walls[name] = phase.wall
+                others[name] = phase.others
 
-        t = time.perf_counter()
+        for rep in range(max(1, args.repeat)):
+            with _Phase() as ph:
+                batch.run_batch(plan, work / f"one{rep}", executor=InlineExecutor(),
+                                engine=engine, quiet=True, pack=False)
+                keep("1 local worker (baseline)", ph.stop())
+            results[f"one{rep}"] = _numbers(work / f"one{rep}")
+
+            with _Phase() as ph:
+                ex = ProcessExecutor(2, preload=(engine.run_block.__module__,))
+                try:
+                    batch.run_batch(plan, work / f"two{rep}", executor=ex, engine=engine,
+                                    quiet=True, pack=False)
+                    keep("2 local workers", ph.stop())
+                finally:
+                    ex.close()
+            results[f"two{rep}"] = _numbers(work / f"two{rep}")
+
+            if not args.no_dask:
+                t = time.perf_counter()
+                dx = DaskExecutor(local_workers=2)
+                dask_start = time.perf_counter() - t
+                try:
+                    with _Phase() as ph:
+                        batch.run_batch(plan, work / f"dask{rep}", executor=dx, engine=engine,
+                                        quiet=True, pack=False)
+                        keep("2-worker Dask cluster", ph.stop())
+                finally:
+                    dx.close()
+                results[f"dask{rep}"] = _numbers(work / f"dask{rep}")
+            for rep_out in work.glob(f"*{rep}"):
+                if rep_out.is_dir():
+                    shutil.rmtree(rep_out, ignore_errors=True)
+
         ex = ProcessExecutor(2, preload=(engine.run_block.__module__,))
-        start2 = time.perf_counter() - t
         try:
-            t = time.perf_counter()
-            batch.run_batch(plan, work / "two", executor=ex, engine=engine, quiet=True,
-                            pack=False)
-            walls["2 local workers"] = time.perf_counter() - t + start2
             over_local = _overhead(work, ex, args.overhead_blocks, 1)
             over_local_k = _overhead(work, ex, args.overhead_blocks, args.blocks_per_task)
         finally:
             ex.close()
-        results["two"] = _numbers(work / "two")
         over_inline = _overhead(work, InlineExecutor(), args.overhead_blocks, 1)
-
-        dask_start = over_dask = over_dask_k = None
+        over_dask = over_dask_k = None
         if not args.no_dask:
-            t = time.perf_counter()
             dx = DaskExecutor(local_workers=2)
-            dask_start = time.perf_counter() - t
             try:
-                t = time.perf_counter()
-                batch.run_batch(plan, work / "dask", executor=dx, engine=engine, quiet=True,
-                                pack=False)
-                walls["2-worker Dask cluster"] = time.perf_counter() - t
                 over_dask = _overhead(work, dx, args.overhead_blocks, 1)
                 over_dask_k = _overhead(work, dx, args.overhead_blocks, args.blocks_per_task)
             finally:
                 dx.close()
-            results["dask"] = _numbers(work / "dask")
 
         load_after = os.getloadavg()
-        same = all(r == results["one"] for r in results.values())
+        same = all(r == results["one0"] for r in results.values())
         base = walls["1 local worker (baseline)"]
         print()
-        print(f"{'executor':<28}{'wall s':>9}{'speed-up':>10}{'efficiency':>12}")
+        print(f"best of {max(1, args.repeat)} run(s) each; 'others' = share of the machine's "
+              f"CPU used by other processes during that run")
+        print(f"{'executor':<28}{'wall s':>9}{'speed-up':>10}{'efficiency':>12}{'others':>9}")
         for name, w in walls.items():
             workers = 1 if name.startswith("1 ") else 2
-            print(f"{name:<28}{w:>9.1f}{base / w:>9.2f}x{base / w / workers:>11.0%}")
+            print(f"{name:<28}{w:>9.1f}{base / w:>9.2f}x{base / w / workers:>11.0%}"
+                  f"{others[name]:>9.0%}")
         if "2-worker Dask cluster" in walls:
             ratio = walls["2-worker Dask cluster"] / walls["2 local workers"]
             print(f"Dask / local processes (2 workers): {ratio:.2f} "
-                  f"(cluster start-up {dask_start:.1f} s, not included)")
+                  f"(cluster start-up {dask_start:.1f} s, not included; local worker start-up "
+                  f"included)")
         print(f"identical numbers on every executor: {'yes' if same else 'NO'}")
         print()
         print("scheduling overhead per block (blocks computing nothing; durable write, "

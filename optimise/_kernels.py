@@ -1126,6 +1126,53 @@ def path_slopes(H, g, A, lo, hi, lb, ub, X, tol, out):
             out[d, free[a]] = sol[a]
 
 
+def greedy_fill_rows(score, lower, cap, left0, out):
+    """Greedy vertex per row: the compiled form of ``constraints._greedy_fill`` (full
+    budget, no cash sleeve), used for the cold starts of batched long-only QPs.
+
+    Parameters
+    ----------
+    score : ndarray, shape (D, N)
+        Ranking score per draw (assets are filled in order of decreasing score; ties keep
+        the column order, as a stable sort does).
+    lower : ndarray, shape (N,)
+        Lower bounds (every weight starts there).
+    cap : ndarray, shape (N,)
+        ``minimum(upper, lower + 1 - lower.sum())``: the most any weight can reach.
+    left0 : float
+        ``1 - lower.sum()``: the budget left after the lower bounds.
+    out : ndarray, shape (D, N)
+        Written with the weights. Same arithmetic, in the same order, as the numpy
+        reference (``min(room, left)`` clipped at 0, added, then subtracted from ``left``),
+        so the results are identical to the last bit (``tests/test_simulate_kernels.py``
+        compares them).
+    """
+    D, n = score.shape
+    neg = np.empty(n)
+    for d in range(D):
+        for i in range(n):
+            neg[i] = -score[d, i]
+            out[d, i] = lower[i]
+        order = np.argsort(neg, kind="mergesort")
+        left = left0
+        for r in range(n):
+            j = order[r]
+            room = cap[j] - lower[j]
+            # numpy's minimum / maximum, signed zeros and NaN included
+            if room < left:
+                add = room
+            elif left < room:
+                add = left
+            elif math.isnan(room) or math.copysign(1.0, room) < 0.0:
+                add = room
+            else:
+                add = left
+            if add <= 0.0:
+                add = 0.0
+            out[d, j] += add
+            left = left - add
+
+
 # ----------------------------------------------------------------------------------------
 # compile: each name below becomes a numba kernel. :func:`plain_twin` executes this same
 # source with an identity decorator, giving undecorated Python twins for the tests.
@@ -1151,6 +1198,7 @@ erc_batch = _compile(erc_batch)
 cov_checks = _compile(cov_checks)
 kkt_batch = _compile(kkt_batch)
 path_slopes = _compile(path_slopes)
+greedy_fill_rows = _compile(greedy_fill_rows)
 
 
 def plain_twin():

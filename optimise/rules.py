@@ -486,7 +486,7 @@ class Rule:
         D, n = c.shape
         if cons.bounded and not cons.group_names and cons.budget == "full":
             score = c - 0.5 * np.diagonal(H, axis1=1, axis2=2)
-            return _greedy_fill(score, cons.lower, cons.upper)
+            return _greedy_fill_fast(score, cons.lower, cons.upper)
         return np.broadcast_to(cons.feasible_point, (D, n)).copy()
 
     def _max_returns(self, means, need=None):
@@ -934,6 +934,20 @@ class Rule:
                 f"portfolio found{'' if single else f' for draw {d}'} (the covariance is singular "
                 f"with a long-only zero-risk combination); {_SHRINK_HINT}")
         return X, spread, None
+
+
+def _greedy_fill_fast(score, lower, upper):
+    """``constraints._greedy_fill(score, lower, upper)`` through one numba kernel (the same
+    numbers to the last bit; the numpy loop over N assets costs about 1 us per draw at
+    N = 10 and 5 us at N = 50)."""
+    score = np.ascontiguousarray(score, dtype=np.float64)
+    lower = np.ascontiguousarray(lower, dtype=np.float64)
+    left0 = 1.0 - lower.sum()
+    cap = np.minimum(upper, lower + 1.0 - lower.sum())
+    out = np.empty(score.shape)
+    K.greedy_fill_rows(score, lower, np.ascontiguousarray(cap, dtype=np.float64),
+                       float(left0), out)
+    return out
 
 
 def _run_qp(H, c, A, lo, hi, lb, ub, x0, rescale_row=-1, warm=True,

@@ -529,7 +529,10 @@ def _frontiers_section(run: RunFolder) -> Section:
         return Section(4, "frontiers", "Frontiers", (_absent(why),), True, why)
     cloud = None
     tab = run.table("frontier_cloud", "frontiers_cloud")
-    if tab is not None and {"expected_return", "volatility"} <= set(tab.columns):
+    fname = dig(fr, "rule")
+    if tab is not None and "rule" in tab.columns and isinstance(fname, str):
+        tab = tab[tab["rule"] == fname]      # the frontier rule's own per-draw allocations
+    if tab is not None and len(tab) and {"expected_return", "volatility"} <= set(tab.columns):
         cloud = pd.DataFrame({"x": tab["volatility"].to_numpy(float) * math.sqrt(ppy),
                               "y": tab["expected_return"].to_numpy(float) * ppy})
     points = []
@@ -538,7 +541,6 @@ def _frontiers_section(run: RunFolder) -> Section:
     if m is not None and v is not None:
         points.append({"label": "1/N under the population", "x": v * math.sqrt(ppy), "y": m * ppy,
                        "colour": S.EQUAL_COLOUR, "marker": "*"})
-    fname = dig(fr, "rule")
     if isinstance(fname, str) and fname in run.rules:
         opt = dig(run.rules[fname], "optimum")
         m, v = as_float(dig(opt, "expected_return")), as_float(dig(opt, "volatility"))
@@ -571,6 +573,9 @@ def _frontiers_section(run: RunFolder) -> Section:
     if cloud is None:
         blocks.append(Para("The cloud of per-draw actual portfolios is not drawn: the run keeps only "
                            "the frontiers' averages over draws.", "note"))
+    else:
+        blocks.append(Para(f"Cloud: the rule '{fname}' re-optimised on each of the first {len(cloud)} "
+                           f"synthetic histories, each allocation judged under the population.", "note"))
     return Section(4, "frontiers", "Frontiers", tuple(blocks), True)
 
 

@@ -15,6 +15,10 @@ __all__ = [
     "stationary_indices_py",
     "bin_counts",
     "bin_counts_py",
+    "bartlett_factors",
+    "bartlett_factors_py",
+    "symmetrize_half",
+    "symmetrize_half_py",
 ]
 
 
@@ -95,3 +99,55 @@ def bin_counts_py(values, low, width, n_bins, zero_tol, counts):
 
 
 bin_counts = njit(cache=True, nogil=True)(bin_counts_py)
+
+
+def bartlett_factors_py(chi, low, out):
+    """Lower-triangular Bartlett factors ``A`` of a chunk of Wishart draws, into ``out``.
+
+    Parameters
+    ----------
+    chi : ndarray, shape (D, N), float64
+        Chi-square variates; ``A[d, i, i] = sqrt(chi[d, i])``.
+    low : ndarray, shape (D, N (N - 1) / 2), float64
+        Standard normals, placed below the diagonal row by row (the order of
+        ``numpy.tril_indices(N, -1)``).
+    out : ndarray, shape (D, N, N), float64
+        Written in full: the diagonal, the normals below it and zeros above it.
+    """
+    d_count, n = chi.shape
+    for d in range(d_count):
+        k = 0
+        for i in range(n):
+            for j in range(i):
+                out[d, i, j] = low[d, k]
+                k += 1
+            out[d, i, i] = np.sqrt(chi[d, i])
+            for j in range(i + 1, n):
+                out[d, i, j] = 0.0
+    return out
+
+
+bartlett_factors = njit(cache=True, nogil=True)(bartlett_factors_py)
+
+
+def symmetrize_half_py(w):
+    """``w <- (w + w') / 2`` per matrix, in place, in one pass.
+
+    Parameters
+    ----------
+    w : ndarray, shape (D, N, N), float64
+        Each entry becomes ``(w[d, i, j] + w[d, j, i]) * 0.5``: the same two roundings as
+        ``w += w.transpose(0, 2, 1).copy(); w *= 0.5``, so the result is identical to the
+        last bit, and exactly symmetric.
+    """
+    d_count, n, _ = w.shape
+    for d in range(d_count):
+        for i in range(n):
+            for j in range(i, n):
+                v = (w[d, i, j] + w[d, j, i]) * 0.5
+                w[d, i, j] = v
+                w[d, j, i] = v
+    return w
+
+
+symmetrize_half = njit(cache=True, nogil=True)(symmetrize_half_py)

@@ -54,6 +54,8 @@ __all__ = [
 
 #: Population metrics of a per-draw allocation, in the order of the metric axis.
 METRICS = ("expected_return", "variance", "volatility", "sharpe", "ceq")
+#: Per-draw allocations kept per rule for the pack's cloud beside the frontiers.
+CLOUD_DRAWS = 1000
 #: Weight percentiles reported per asset.
 PERCENTILES = (5, 25, 50, 75, 95)
 #: Width of the weight histogram's bins (percentiles are exact to half of it).
@@ -847,11 +849,10 @@ def run_block(spec: ResampleSpec, block_index: int) -> BlockResult:
         Picklable; :meth:`BlockResult.to_bytes` gives its durable form.
     """
     spec = spec.resolved()          # no-op for a resolved spec (prepare_study's are)
-    plan = block_plan(spec)
+    plan, ctx, fingerprint = _derived(spec)
     if not 0 <= block_index < len(plan):
         raise SettingsError(f"block index {block_index} out of range (0..{len(plan) - 1})")
     block = plan[block_index]
-    ctx = _Context(spec)
     if block.part == "main":
         acc = _MainAccumulator(ctx, block)
     elif block.part == "sweep":
@@ -872,7 +873,27 @@ def run_block(spec: ResampleSpec, block_index: int) -> BlockResult:
             acc.add_chunk(histories, lo)
         except NoiseproofError as exc:
             raise type(exc)(f"resampling ({block.part} draws {lo}..{hi - 1}): {exc}") from None
-    return acc.result(spec.fingerprint())
+    return acc.result(fingerprint)
+
+
+#: (spec, (plan, context, fingerprint)) of the last spec run_block saw in this process.
+_LAST_SPEC = (None, None)
+
+
+def _derived(spec: ResampleSpec):
+    """The block plan, the context and the fingerprint of ``spec``, kept for the next call.
+
+    All three are pure functions of the (frozen) spec, so the blocks a process runs for
+    the same spec object share them instead of rebuilding them per block (about 0.5 ms a
+    block: the plan, the SHA-256 fingerprint, the Cholesky factor of the generator).
+    Keyed by identity: a new or rebuilt spec object gets fresh ones.
+    """
+    global _LAST_SPEC
+    last, derived = _LAST_SPEC
+    if last is not spec:
+        derived = (block_plan(spec), _Context(spec), spec.fingerprint())
+        _LAST_SPEC = (spec, derived)
+    return derived
 
 
 class _Accumulator:
@@ -895,6 +916,11 @@ class _Accumulator:
         self.sums.setdefault(name + ":n", []).append(n)
         self.sums.setdefault(name + ":mean", []).append(mean)
         self.sums.setdefault(name + ":m2", []).append(m2)
+
+    def _zero_moments(self, name, shape):
+        """The chunk moments of values that are all NaN: n, mean and m2 all zero."""
+        for suffix in (":n", ":mean", ":m2"):
+            self.sums.setdefault(name + suffix, []).append(np.zeros(shape))
 
     def _count(self, name, values):
         v = np.asarray(values, dtype=np.int64)
@@ -985,8 +1011,19 @@ class _MainAccumulator(_Accumulator):
         if spec.keep_draws:
             self._sample("weights", weights)
         # attribution: true mean + estimated covariance, estimated mean + true covariance
-        att = np.full((d, n_rules, 2, 5), np.nan)
         att_ok = np.zeros((d, n_rules, 2), dtype=bool)
+        if not any(ctx.attrib):
+            # no rule attributes: every value is NaN, whose chunk moments are (0, 0, 0)
+            # (what chunk_moments returns for an all-NaN chunk), without the NaN pass
+            self._count("att_ok", att_ok.sum(axis=0))
+            self._zero_moments("att", (n_rules, 2, 5))
+        else:
+            self._attribution(moments, d, n_rules, att_ok)
+        self._frontiers(moments, d, first_draw)
+
+    def _attribution(self, moments, d, n_rules, att_ok):
+        ctx = self.ctx
+        att = np.full((d, n_rules, 2, 5), np.nan)
         for i, rs in enumerate(ctx.rules):
             if not ctx.attrib[i]:
                 continue
@@ -997,11 +1034,21 @@ class _MainAccumulator(_Accumulator):
             att[:, i, 1] = score(w_tc, ctx.mu, ctx.cov, ctx.gamma)
         self._count("att_ok", att_ok.sum(axis=0))
         self._moments("att", att)
-        # frontiers (Broadie 1993) and the rank-matched averaged frontier (Michaud 1998)
+
+    def _frontiers(self, moments, d, first_draw):
+        """Frontiers (Broadie 1993) and the rank-matched averaged frontier (Michaud 1998)."""
+        ctx, spec = self.ctx, self.ctx.spec
         fi = ctx.frontier_index
         if fi is not None:
             nf = max(0, min(d, spec.frontier_draws - first_draw))
             k = spec.frontier_points
+            if not nf:
+                # past the frontier draws: all NaN, chunk moments (0, 0, 0)
+                self._zero_moments("fr", (k, 4))
+                self._zero_moments("fw", (k, ctx.n))
+                self._count("frontier_draws", np.array([0, 0]))
+                self._count("broadie_violations", np.array([0]))
+                return
             fr = np.full((d, k, 4), np.nan)   # estimated mean, var; actual mean, var
             fw = np.full((d, k, ctx.n), np.nan)
             used = 0
@@ -1169,8 +1216,16 @@ def merge_blocks(spec: ResampleSpec, results: Iterable[BlockResult]) -> "Resampl
     return m.finish()
 
 
-def _worker_init():  # pragma: no cover - runs in worker processes
-    """One BLAS thread per worker process (the workers are the parallelism)."""
+#: The spec of this worker process (set once by :func:`_worker_init`).
+_WORKER_SPEC = None
+
+
+def _worker_init(spec=None):  # pragma: no cover - runs in worker processes
+    """One BLAS thread per worker process (the workers are the parallelism); keep the
+    study's spec, so that tasks carry only a block index and the blocks of one worker
+    share its plan, context and fingerprint (see :func:`_derived`)."""
+    global _WORKER_SPEC
+    _WORKER_SPEC = spec
     try:
         from threadpoolctl import threadpool_limits
     except ImportError:
@@ -1178,8 +1233,8 @@ def _worker_init():  # pragma: no cover - runs in worker processes
     threadpool_limits(1)
 
 
-def _run_block_worker(spec, index):  # pragma: no cover - runs in worker processes
-    return run_block(spec, index)
+def _run_block_worker(index):  # pragma: no cover - runs in worker processes
+    return run_block(_WORKER_SPEC, index)
 
 
 def run_resampling(spec: ResampleSpec, *, workers: int = 1,
@@ -1217,10 +1272,10 @@ def run_resampling(spec: ResampleSpec, *, workers: int = 1,
     nxt = 0
     window = 3 * workers
     with cf.ProcessPoolExecutor(max_workers=workers, mp_context=ctx,
-                                initializer=_worker_init) as pool:
+                                initializer=_worker_init, initargs=(spec,)) as pool:
         it = iter(plan)
         for b in it:
-            pending[pool.submit(_run_block_worker, spec, b.index)] = b
+            pending[pool.submit(_run_block_worker, b.index)] = b
             if len(pending) >= window:
                 break
         while pending:
@@ -1232,7 +1287,7 @@ def run_resampling(spec: ResampleSpec, *, workers: int = 1,
                     progress(b.stop - b.start)
                 nb = next(it, None)
                 if nb is not None:
-                    pending[pool.submit(_run_block_worker, spec, nb.index)] = nb
+                    pending[pool.submit(_run_block_worker, nb.index)] = nb
             while nxt in done:
                 merger.add(done.pop(nxt))
                 nxt += 1
@@ -1439,6 +1494,19 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
                     qrows.append({"rule": name, "metric": metric, "quantile": float(q),
                                   "value": float(v)})
         tables["population_quantiles"] = pd.DataFrame(qrows)
+        # the cloud of per-draw allocations judged under the population (first draws of each
+        # rule that uses inputs), drawn beside the frontiers
+        er, vo = METRICS.index("expected_return"), METRICS.index("volatility")
+        crows = []
+        for i, name in enumerate(names):
+            if not _uses_inputs(spec.rules[i]):
+                continue
+            sub = ms[:CLOUD_DRAWS, i, :]
+            for d in np.flatnonzero(np.isfinite(sub[:, er]) & np.isfinite(sub[:, vo])):
+                crows.append({"rule": name, "draw": int(d), "expected_return": float(sub[d, er]),
+                              "volatility": float(sub[d, vo])})
+        if crows:
+            tables["frontier_cloud"] = pd.DataFrame(crows)
 
     # frontiers
     frontiers = {"skipped": "no rule uses both means and covariances (or frontier_points < 2)"}

@@ -151,15 +151,13 @@ class NormalGenerator:
         z = rng.standard_normal((count, n))
         chi = rng.chisquare(np.arange(df, df - n, -1, dtype=np.float64), size=(count, n))
         low = rng.standard_normal((count, n * (n - 1) // 2))
-        a = np.zeros((count, n, n))
-        ii = np.arange(n)
-        a[:, ii, ii] = np.sqrt(chi)
-        rows, cols = np.tril_indices(n, -1)
-        a[:, rows, cols] = low
+        # A: sqrt(chi) on the diagonal, the normals below it row by row (tril_indices
+        # order), zeros above; then W = (L A)(L A)' made exactly symmetric. Two kernels
+        # replace the fancy indexing and the transposed copy (same numbers to the bit).
+        a = _kernels.bartlett_factors(chi, low, np.empty((count, n, n)))
         b = np.matmul(self._chol_t.T, a)
         w = np.matmul(b, b.transpose(0, 2, 1))
-        w += w.transpose(0, 2, 1).copy()
-        w *= 0.5
+        _kernels.symmetrize_half(w)
         mean = z @ self._chol_t
         mean *= 1.0 / math.sqrt(length)
         mean += self.mean
