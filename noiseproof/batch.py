@@ -1259,7 +1259,7 @@ def _write_record(folder: Path, record: dict) -> None:
 
 def run_batch(plan: Plan, out, *, executor=None, engine: Optional[Engine] = None,
               resume: bool = False, quiet: bool = False, pack: bool = True,
-              packs=None, blocks_per_task: int = 1, argv=None,
+              packs=None, blocks_per_task: Optional[int] = None, argv=None,
               max_attempts: int = 3) -> BatchOutcome:
     """Run every study of ``plan`` into ``out``; see the module docstring for the layout.
 
@@ -1282,9 +1282,10 @@ def run_batch(plan: Plan, out, *, executor=None, engine: Optional[Engine] = None
         False skips every study's pack (``--no-pack``).
     packs : "all", "none" or sequence of glob patterns, optional
         Which studies get a pack (default: the plan's ``packs``).
-    blocks_per_task : int
+    blocks_per_task : int, optional
         Blocks grouped into one task (fewer, larger tasks: less scheduler overhead per
-        block, coarser durable progress). Results do not depend on it.
+        block, coarser durable progress). Results do not depend on it. Default: the
+        executor's ``blocks_per_task`` (1 locally, 4 on Dask).
     argv : list of str, optional
         The command line, recorded in each study's manifest.
     max_attempts : int
@@ -1309,6 +1310,8 @@ def run_batch(plan: Plan, out, *, executor=None, engine: Optional[Engine] = None
     engine = engine or default_engine()
     executor = executor or InlineExecutor()
     packs = plan.packs if packs is None else packs
+    if blocks_per_task is None:
+        blocks_per_task = int(getattr(executor, "blocks_per_task", 1))
     if blocks_per_task < 1:
         raise SettingsError(f"--blocks-per-task must be at least 1, not {blocks_per_task}")
     delay = float(os.environ.get("NOISEPROOF_BATCH_BLOCK_DELAY", "0") or 0)

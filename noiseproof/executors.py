@@ -96,6 +96,7 @@ class InlineExecutor:
 
     kind = "inline"
     slots = 1
+    blocks_per_task = 1
 
     def describe(self) -> str:
         return "1 worker (this process)"
@@ -132,6 +133,7 @@ class ProcessExecutor:
     """
 
     kind = "processes"
+    blocks_per_task = 1
 
     def __init__(self, workers: int, *, preload: tuple = ()):
         if workers < 1:
@@ -217,6 +219,9 @@ class DaskExecutor:
     """
 
     kind = "dask"
+    #: Default blocks per task: a scheduler round trip costs ~10 ms, so short blocks are
+    #: grouped (results do not depend on it; a crash loses the unfinished tasks).
+    blocks_per_task = 4
 
     def __init__(self, *, address: Optional[str] = None, local_workers: Optional[int] = None,
                  client=None, connect_timeout: float = 20.0):
