@@ -557,18 +557,12 @@ def score(weights: np.ndarray, mean: np.ndarray, cov: np.ndarray, gamma: float) 
     """
     er = weights @ mean
     var = np.einsum("dn,dn->d", weights @ cov, weights)
-    var = np.maximum(var, 0.0)
-    vol = np.sqrt(var)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        sharpe = np.where(vol > 0.0, er / np.where(vol > 0.0, vol, 1.0),
-                          np.where(np.isnan(vol), np.nan, 0.0))
+    # the element-wise rest in one kernel (same operations as the numpy form
+    # maximum(var, 0), sqrt, where(vol > 0, er / vol, nan-or-0), er - 0.5 gamma var)
     out = np.empty((weights.shape[0], 5))
-    out[:, 0] = er
-    out[:, 1] = var
-    out[:, 2] = vol
-    out[:, 3] = sharpe
-    out[:, 4] = er - 0.5 * gamma * var
-    return out
+    return _kernels.score_columns(np.ascontiguousarray(er, dtype=np.float64),
+                                  np.ascontiguousarray(var, dtype=np.float64),
+                                  0.5 * gamma, out)
 
 
 # --------------------------------------------------------------------------- per-process context
@@ -876,7 +870,8 @@ def run_block(spec: ResampleSpec, block_index: int) -> BlockResult:
     return acc.result(fingerprint)
 
 
-#: (spec, (plan, context, fingerprint)) of the last spec run_block saw in this process.
+#: (spec, ((plan, context, fingerprint), copies of its arrays)): the last spec run_block
+#: saw in this process.
 _LAST_SPEC = (None, None)
 
 
@@ -886,13 +881,18 @@ def _derived(spec: ResampleSpec):
     All three are pure functions of the (frozen) spec, so the blocks a process runs for
     the same spec object share them instead of rebuilding them per block (about 0.5 ms a
     block: the plan, the SHA-256 fingerprint, the Cholesky factor of the generator).
-    Keyed by identity: a new or rebuilt spec object gets fresh ones.
+    Keyed by identity: a new or rebuilt spec object gets fresh ones. The spec is frozen
+    but its arrays are not, so their contents are compared as well (a few microseconds).
     """
     global _LAST_SPEC
-    last, derived = _LAST_SPEC
-    if last is not spec:
-        derived = (block_plan(spec), _Context(spec), spec.fingerprint())
-        _LAST_SPEC = (spec, derived)
+    last, cached = _LAST_SPEC
+    arrays = (spec.population_mean, spec.population_cov, spec.history)
+    if last is spec and all(a is None and b is None or a is not None and b is not None
+                            and np.array_equal(a, b) for a, b in zip(arrays, cached[1])):
+        return cached[0]
+    derived = (block_plan(spec), _Context(spec), spec.fingerprint())
+    _LAST_SPEC = (spec, (derived, tuple(None if a is None else np.array(a, copy=True)
+                                        for a in arrays)))
     return derived
 
 
@@ -949,13 +949,22 @@ class _Accumulator:
 TIE_RTOL = 1e-10
 
 
-def _beats(metrics, ew):
-    """(R, 2) counts of draws beating 1/N on CEQ and on Sharpe (failed draws never do).
+def _beats(metrics, ref):
+    """(R, 2) counts of draws beating rule ``ref`` (1/N or the policy) on CEQ and on
+    Sharpe (failed draws never do); one kernel pass, see :func:`_beats_numpy`.
 
     A draw beats 1/N when its figure is above 1/N's by more than ``TIE_RTOL`` relative to
     1/N's scale (``|ceq| + variance`` for CEQ, ``|sharpe|`` for Sharpe), so that the
     rounding of an allocation equal to 1/N never counts as beating it.
     """
+    out = np.empty((metrics.shape[1], 2), dtype=np.int64)
+    return _kernels.beats_counts(np.ascontiguousarray(metrics, dtype=np.float64), int(ref),
+                                 TIE_RTOL, out)
+
+
+def _beats_numpy(metrics, ew):
+    """The numpy form of :func:`_beats` with the reference's metrics ``ew`` (D, 5)
+    (a test compares the two)."""
     tol_ceq = TIE_RTOL * (np.abs(ew[:, None, 4]) + np.abs(ew[:, None, 1])) + 1e-300
     tol_sh = TIE_RTOL * np.abs(ew[:, None, 3]) + 1e-300
     with np.errstate(invalid="ignore"):
@@ -993,9 +1002,9 @@ class _MainAccumulator(_Accumulator):
         self._moments("m", metrics)
         with np.errstate(invalid="ignore"):
             self._count("held", (np.abs(weights) > spec.hold_threshold).sum(axis=0))
-        self._count("beats", _beats(metrics, metrics[:, ctx.ew]))
+        self._count("beats", _beats(metrics, ctx.ew))
         if ctx.pol is not None:
-            self._count("beats_policy", _beats(metrics, metrics[:, ctx.pol]))
+            self._count("beats_policy", _beats(metrics, ctx.pol))
             self._moments("te", _tracking_errors(weights, weights[:, ctx.pol], ctx.cov))
         for i, h in enumerate(ctx.hists):
             counts = self.counts.setdefault(f"hist{i}", np.zeros((ctx.n, h.n_columns), np.int64))
@@ -1134,9 +1143,9 @@ class _SweepAccumulator(_Accumulator):
                 metrics[:, i] = score(w, ctx.mu, ctx.cov, ctx.gamma)
         self._count("ok", ok.sum(axis=0))
         self._moments("m", metrics)
-        self._count("beats", _beats(metrics, metrics[:, ctx.ew]))
+        self._count("beats", _beats(metrics, ctx.ew))
         if ctx.pol is not None:
-            self._count("beats_policy", _beats(metrics, metrics[:, ctx.pol]))
+            self._count("beats_policy", _beats(metrics, ctx.pol))
 
 
 class _CheckAccumulator(_Accumulator):

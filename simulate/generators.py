@@ -117,13 +117,14 @@ class NormalGenerator:
 
     def __post_init__(self):
         object.__setattr__(self, "_chol_t", np.ascontiguousarray(covariance_factor(self.cov).T))
+        object.__setattr__(self, "_mean64", np.ascontiguousarray(self.mean, dtype=np.float64))
 
     def draw(self, rng: np.random.Generator, count: int, length: int) -> np.ndarray:
         """``count`` histories of ``length`` rows, shape ``(count, length, N)``."""
         n = self.mean.shape[0]
         z = rng.standard_normal((count * length, n))
         x = z @ self._chol_t
-        x += self.mean
+        _kernels.add_row(x, self._mean64)          # x += mean, without numpy's short rows
         return x.reshape(count, length, n)
 
     def draw_moments(self, rng: np.random.Generator, count: int, length: int) -> "SampleMoments":

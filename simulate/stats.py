@@ -12,6 +12,8 @@ import math
 
 import numpy as np
 
+from . import _kernels
+
 __all__ = ["CHUNK_DRAWS", "ChunkSums", "WeightHistogram", "mean_sd_se", "chunk_moments",
            "moments_mean_sd_se"]
 
@@ -55,9 +57,14 @@ class ChunkSums:
                 cm = partials[base + ":mean"]
                 c2 = partials[base + ":m2"]
                 acc = self.total.get(base)
-                for c in range(arr.shape[0]):
-                    acc = _chan(acc, (cn[c], cm[c], c2[c]))
-                self.total[base] = acc
+                start = 0
+                if acc is None:
+                    if not arr.shape[0]:
+                        self.total[base] = None
+                        continue
+                    acc = _chan(None, (cn[0], cm[0], c2[0]))
+                    start = 1
+                self.total[base] = _chan_fold(acc, cn[start:], cm[start:], c2[start:])
                 continue
             acc = self.total.get(name)
             if acc is None:
@@ -80,6 +87,21 @@ def _chan(acc, part):
         frac = np.where(n > 0, nb / np.where(n > 0, n, 1.0), 0.0)
         mean = ma + delta * frac
         m2 = m2a + m2b + delta * delta * na * frac
+    return n, mean, m2
+
+
+def _chan_fold(acc, cn, cm, c2):
+    """:func:`_chan` applied chunk after chunk (rows of ``cn``, ``cm``, ``c2``) in one
+    kernel; the same operations in the same order (a test compares the two)."""
+    n, mean, m2 = (np.array(x, dtype=np.float64, copy=True) for x in acc)
+    if cn.shape[0]:
+        shape = n.shape
+        k = n.size
+        fn, fm, f2 = n.reshape(k), mean.reshape(k), m2.reshape(k)
+        _kernels.chan_fold(fn, fm, f2,
+                           *(np.ascontiguousarray(x, dtype=np.float64).reshape(-1, k)
+                             for x in (cn, cm, c2)))
+        n, mean, m2 = fn.reshape(shape), fm.reshape(shape), f2.reshape(shape)
     return n, mean, m2
 
 
