@@ -147,7 +147,10 @@ def test_random_max_sharpe_matches_cvxpy(seed, n, long_only):
     wr = y.value / kappa.value
     sr = lambda v: (v @ mu - 0.001) / np.sqrt(v @ S @ v)
     assert sr(w) >= sr(wr) - 1e-8
-    np.testing.assert_allclose(w, wr, atol=1e-5)
+    # w = y / kappa: with shorting, kappa can be small (the tangency near the frontier's
+    # asymptote) and the reference's weights then carry its solver tolerance times 1/kappa,
+    # so the weights are compared relative to their size (|w| reached 183 in one example)
+    np.testing.assert_allclose(w, wr, atol=1e-5 * max(1.0, np.abs(wr).max()))
 
 
 def test_every_batch_solve_passes_kkt_and_matches_quadprog():
