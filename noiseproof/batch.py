@@ -52,13 +52,13 @@ import tomllib
 import traceback
 from collections import deque
 from concurrent.futures import CancelledError, ThreadPoolExecutor
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable, Optional, Sequence
 
 from estimators.core import NoiseproofError, SettingsError
 
-from .studyfile import StudySettings, parse_study
+from .studyfile import StudySettings, parse_study, read_settings_text
 
 __all__ = [
     "Plan",
@@ -497,13 +497,7 @@ def _check_packs(packs, src):
 def load_plan(path) -> Plan:
     """Read and parse a plan file; a missing or unreadable file is a SettingsError."""
     p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise SettingsError(f"{p}: plan file not found") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise SettingsError(f"{p}: cannot read the plan file ({exc.__class__.__name__})") from None
-    return parse_plan(text, p)
+    return parse_plan(read_settings_text(p, "plan file"), p)
 
 
 def wants_pack(name: str, packs) -> bool:

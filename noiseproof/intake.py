@@ -199,7 +199,7 @@ class HistorySummary:
                 f"{a.name:<{width}}  {a.mean_annualised:>8.2%}  {a.volatility_annualised:>8.2%}  "
                 f"{a.minimum:>8.2%}  {a.maximum:>8.2%}  {ac:>6}  {a.missing_cells:>7d}"
             )
-        lines.append(f"(min and max are single-period returns; ac(1) is the lag-1 autocorrelation)")
+        lines.append("(min and max are single-period returns; ac(1) is the lag-1 autocorrelation)")
         for note in self.notes:
             lines.append(f"note: {note}")
         return "\n".join(lines)

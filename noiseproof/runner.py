@@ -401,6 +401,15 @@ def _rule_summary(prepared: PreparedStudy, rs, res_rules: Optional[dict]) -> dic
     return out
 
 
+def _answer(decided, yes: str, no: str) -> str:
+    """The verdict's word from the criteria that could be assessed (True/False each)."""
+    if not decided:
+        return "not assessed"
+    if all(decided):
+        return yes
+    return "mixed" if any(decided) else no
+
+
 def _verdict(prepared: PreparedStudy, summary: dict) -> dict:
     """The stated criteria of "does it survive input noise?" for the policy rule."""
     v = prepared.settings.verdict
@@ -460,14 +469,7 @@ def _verdict(prepared: PreparedStudy, summary: dict) -> dict:
                          "value": pv, "threshold": v.significance, "dsr": dsr,
                          "passed": passed})
     decided = [c["passed"] for c in criteria if c["passed"] is not None]
-    if not decided:
-        answer = "not assessed"
-    elif all(decided):
-        answer = "survives"
-    elif any(decided):
-        answer = "mixed"
-    else:
-        answer = "does not survive"
+    answer = _answer(decided, "survives", "does not survive")
     out = {"proposed": policy, "rule": policy, "answer": answer, "criteria": criteria,
            "settings": settings_out,
            "criteria_passed": sum(bool(x) for x in decided), "criteria_assessed": len(decided),
@@ -513,14 +515,7 @@ def _verdict_policy(summary: dict, name: str, held: str, v) -> dict:
                          "value": be, "basis": tr.get("break_even_basis"),
                          "passed": None if be is None else be != "never"})
     decided = [c["passed"] for c in criteria if c["passed"] is not None]
-    if not decided:
-        answer = "not assessed"
-    elif all(decided):
-        answer = "better than the policy"
-    elif any(decided):
-        answer = "mixed"
-    else:
-        answer = "not better than the policy"
+    answer = _answer(decided, "better than the policy", "not better than the policy")
     return {"policy": held, "proposed": name, "answer": answer, "criteria": criteria,
             "criteria_passed": sum(bool(x) for x in decided), "criteria_assessed": len(decided)}
 

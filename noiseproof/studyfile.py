@@ -380,16 +380,21 @@ def parse_study(text: str, path: Optional[Path] = None) -> StudySettings:
     return settings
 
 
+def read_settings_text(path, what: str = "study file") -> str:
+    """The text of a settings file; a missing or unreadable file is a SettingsError."""
+    p = Path(path)
+    try:
+        return p.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise SettingsError(f"{p}: {what} not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise SettingsError(f"{p}: cannot read the {what} ({exc.__class__.__name__})") from None
+
+
 def load_study(path) -> StudySettings:
     """Read and parse a study file; a missing or unreadable file is a SettingsError."""
     p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise SettingsError(f"{p}: study file not found") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise SettingsError(f"{p}: cannot read the study file ({exc.__class__.__name__})") from None
-    return parse_study(text, p.resolve())
+    return parse_study(read_settings_text(p), p.resolve())
 
 
 def study_risk_aversion(settings: StudySettings) -> float:

@@ -20,7 +20,6 @@ squares on the constraints active at ``x`` (so the check does not trust the solv
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Optional
 
 import numpy as np
 

@@ -752,7 +752,6 @@ def _moments_for(ctx: _Context, histories, valid=None):
     """
     cache = {}
     out = []
-    d = histories.shape[0]
     estimate = _from_sample_moments if isinstance(histories, SampleMoments) else _estimate_batch
     for i, rs in enumerate(ctx.rules):
         if valid is not None and not valid[i]:
@@ -1523,7 +1522,6 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
     if fi is not None:
         from optimise import efficient_frontier
 
-        nf = max(int(cnt["frontier_draws"][0]), 1)
         nf_failed = int(cnt["frontier_draws"][1])
         k = spec.frontier_points
         fr_mean, fr_sd, fr_se = moments_mean_sd_se(tot["fr"])          # (K, 4)
