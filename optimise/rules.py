@@ -36,7 +36,8 @@ Rule types (``RULE_TYPES``) and what they solve
 
 Tracking error against a policy
 -------------------------------
-``min-variance``, ``mean-variance``, ``target-return`` and ``max-sharpe`` accept
+``min-variance``, ``mean-variance``, ``target-return``, ``max-sharpe`` and
+``target-volatility`` accept
 ``max_tracking_error`` (``tracking_error_units`` = ``"per period"``, the default, or
 ``"annualised"``): the second-order cone constraint ``(w - p)'Sigma (w - p) <= te^2`` with
 ``p`` the policy's weights. It is solved exactly through its Lagrangian: for a multiplier
@@ -51,7 +52,12 @@ constraint binds to ``1e-10`` relative. ``t = 1`` minimises the tracking error i
 limit below that minimum is infeasible, and a limit of 0 returns the policy when the
 rule's constraints allow it. For ``max-sharpe`` the limited mean-variance solution
 ``w(tau)`` is searched over the risk tolerance ``tau`` for ``w'Sigma w = tau w'mu_ex``
-(the Sharpe ratio is quasi-concave, so that stationary point is its maximum).
+(the Sharpe ratio is quasi-concave, so that stationary point is its maximum). For
+``target-volatility`` (two cones: the volatility and the tracking error) the same limited
+``w(tau)``, whose variance does not decrease in ``tau``, is searched for
+``w'Sigma w = target^2``; when even the largest return within the limit is inside the
+target that is the answer, and a target below the least volatility within the limit is
+infeasible.
 """
 from __future__ import annotations
 
@@ -92,8 +98,8 @@ RULE_PARAMS = {
     "equal-risk-contribution": (),
     "fixed": ("weights",) + _COMMON,
 }
-#: Rule types that take ``max_tracking_error`` (a QP with Hessian Sigma).
-TE_TYPES = ("min-variance", "mean-variance", "target-return", "max-sharpe")
+#: Rule types that take ``max_tracking_error``.
+TE_TYPES = ("min-variance", "mean-variance", "target-return", "max-sharpe", "target-volatility")
 #: Accepted spellings of ``tracking_error_units``.
 TE_UNITS = {"per period": "per period", "per-period": "per period", "period": "per period",
             "annualised": "annualised", "annualized": "annualised", "annual": "annualised"}
@@ -120,7 +126,9 @@ class Allocation:
         for ``equal-weight`` and ``inverse-volatility``).
     implied_risk_aversion : float or None
         For ``target-volatility``: the risk aversion of the mean-variance problem with the
-        same solution (inf when the volatility limit does not bind).
+        same solution (0 when the volatility limit does not bind: the largest return; inf
+        when the target equals the least attainable volatility). With
+        ``max_tracking_error``: of the mean-variance problem under the same limit.
     """
 
     weights: np.ndarray
@@ -251,10 +259,24 @@ class Rule:
             return kkt_residuals(y, H[0], c[0], A[0], lo[0], hi[0], lb, ub)
         if self.type == "target-volatility":
             A, lo, hi = cons.rows()
-            gap = self.target ** 2 - float(w @ S @ w)
-            extra = [2.0 * S @ w] if abs(gap) <= 1e-9 * max(self.target ** 2, 1e-300) else []
-            return kkt_residuals(w, np.zeros_like(S), self._excess(mu), A, lo, hi, cons.lower,
-                                 cons.upper, extra_gradients=extra)
+            v2 = self.target ** 2
+            gap = v2 - float(w @ S @ w)
+            extra = [2.0 * S @ w] if abs(gap) <= 1e-9 * max(v2, 1e-300) else []
+            if self.max_tracking_error is None:
+                return kkt_residuals(w, np.zeros_like(S), self._excess(mu), A, lo, hi,
+                                     cons.lower, cons.upper, extra_gradients=extra)
+            # both cones: the volatility and the tracking error, each with its own
+            # multiplier when it binds; their violations count as primal
+            d = w - self.policy_weights
+            te2 = self.max_tracking_error ** 2
+            gap_te = te2 - float(d @ S @ d)
+            if abs(gap_te) <= 1e-8 * max(te2, 1e-300):
+                extra.append(S @ d)
+            r = kkt_residuals(w, np.zeros_like(S), self._excess(mu), A, lo, hi, cons.lower,
+                              cons.upper, extra_gradients=extra)
+            return KKTResiduals(r.stationarity,
+                                max(r.primal, -gap / max(v2, 1e-300),
+                                    -gap_te / max(te2, 1e-300)), r.dual, r.complementarity)
         if self.type not in _QP_TYPES:
             raise SettingsError(f"rule type '{self.type}' is not an optimisation; nothing to check")
         H, c, A, lo, hi, lb, ub = self._qp_problem(mu[None, :], S[None])
@@ -345,6 +367,8 @@ class Rule:
         if t == "equal-risk-contribution":
             return self._erc(covs, single)
         if t == "target-volatility":
+            if self.max_tracking_error is not None:
+                return self._target_vol_te(means, covs, single)
             return self._target_vol(means, covs, single)
         if self.max_tracking_error is not None:
             return self._qp_te(means, covs, single)
@@ -911,6 +935,178 @@ class Rule:
         gam = np.where(T > 0, 1.0 / np.where(T > 0, T, 1.0), np.inf)
         return _clean(X, cons), kkt, gam
 
+    def _target_vol_te(self, means, covs, single: bool):
+        """Largest ``w'mu`` with ``sqrt(w'Sigma w) <= target`` and the tracking-error limit.
+
+        Over the convex set ``C`` (linear constraints and the tracking-error cone) the
+        mean-variance solution ``w(tau)`` of ``min 1/2 w'Sigma w - tau mu'w`` (each one a
+        :meth:`_te_core` search) has a variance that does not decrease in ``tau``:
+
+        1. ``tau = 0`` (least variance in ``C``): above the target means infeasible;
+        2. the largest return in ``C`` (the limit ``tau -> inf``): the linear programme's
+           maximum when it lies in ``C``, else the point where the cone binds, i.e. the
+           tracking-error-limited solution of ``min 1/2 w'Sigma w - (Sigma p + k mu)'w``
+           at its multiplier; within the target, it is the answer (the volatility is slack);
+        3. else a bracket search in ``tau`` for ``w(tau)'Sigma w(tau) = target^2``: steps to
+           the root of the quadratic the variance is along the straight path between the
+           bracket's solutions, bisecting every third step; it stops when the volatility
+           binds to ``1e-10`` relative.
+
+        Returns (X (D, N), kkt (D,), implied risk aversion ``1/tau`` (D,); 0 when the
+        volatility is slack, inf when it binds at the least variance, as without the limit).
+        """
+        cons = self.constraints
+        self._check_conditioning(covs, single)
+        D, n = means.shape
+        mu = np.ascontiguousarray(self._excess(means))
+        A0, lo0, hi0 = cons.rows()
+        A = np.ascontiguousarray(np.broadcast_to(A0, (D,) + A0.shape))
+        lo = np.ascontiguousarray(np.broadcast_to(lo0, (D, lo0.size)))
+        hi = np.ascontiguousarray(np.broadcast_to(hi0, (D, hi0.size)))
+        lb, ub = cons.lower.copy(), cons.upper.copy()
+        H = covs
+        p = self.policy_weights
+        te2 = float(self.max_tracking_error) ** 2
+        vt = float(self.target) ** 2
+        Sp = np.einsum("dij,j->di", covs, p)
+        x0 = self._cold_points(covs, np.zeros((D, n)))
+        least = self._qp_core(H, Sp, A, lo, hi, lb, ub, x0, single)  # t = 1: independent of c
+        diag = np.max(np.diagonal(covs, axis1=1, axis2=2), axis=1)
+        vtol = TE_RTOL * vt + 1e-13 * diag           # accuracy of a binding volatility (on V)
+        where = (lambda d: "" if single else f" (draw {d})")
+
+        def solve(idx, c, start):
+            X, kkt, T = self._te_core(covs[idx], H[idx], c, A[idx], lo[idx], hi[idx], lb, ub,
+                                      np.ascontiguousarray(start), single,
+                                      least=tuple(a[idx] for a in least))
+            return X, kkt, T
+
+        def var(X, idx):
+            return np.einsum("dn,dn->d", np.einsum("dij,dj->di", covs[idx], X), X)
+
+        allidx = np.arange(D)
+        # 1. least variance within C
+        X_lo, k_lo, _ = solve(allidx, np.zeros((D, n)), x0)
+        V_lo = var(X_lo, allidx)
+        bad = V_lo > vt + vtol
+        if np.any(bad):
+            d = int(np.flatnonzero(bad)[0])
+            raise InfeasibleError(
+                f"rule '{self.name}': target volatility {self.target:.6g} is below the least "
+                f"volatility {math.sqrt(V_lo[d]):.6g} attainable within max_tracking_error "
+                f"{self.max_tracking_error:.6g} under the constraints" + where(d)
+                + "; raise the target or loosen the tracking-error limit")
+        X = X_lo.copy()
+        kkt = k_lo.copy()
+        gam = np.full(D, np.inf)                     # tau = 0: the variance binds at its least
+        done = V_lo >= vt - vtol
+        # 2. largest return within C
+        rest = np.flatnonzero(~done)
+        X_inf = np.empty((D, n))
+        k_inf = np.zeros(D)
+        if rest.size:
+            need = np.ones(rest.size, dtype=bool)
+            if cons.bounded:
+                _, xm = self._max_returns(mu[rest])
+                dm = xm - p
+                tm = np.einsum("dn,dn->d", np.einsum("dij,dj->di", covs[rest], dm), dm)
+                ok = tm <= te2 + TE_RTOL * te2 + 1e-13 * diag[rest]
+                X_inf[rest[ok]] = _clean(xm[ok], cons)
+                need = ~ok
+            idx = rest[need]
+            if idx.size:
+                mmax = np.maximum(np.abs(mu[idx]).max(axis=1), 1e-300)
+                k = 1e-2 * max(math.sqrt(te2), 1e-8) * np.sqrt(diag[idx]) / mmax
+                pending = np.ones(idx.size, dtype=bool)
+                Xc = np.ascontiguousarray(X_lo[idx])
+                for _ in range(60):
+                    j = np.flatnonzero(pending)
+                    if j.size == 0:
+                        break
+                    g = idx[j]
+                    Xg, kg, Tg = solve(g, Sp[g] + k[j, None] * mu[g], Xc[j])
+                    Xc[j] = Xg
+                    X_inf[g], k_inf[g] = Xg, kg
+                    # the cone binds (T > 0): the exact maximum return within C
+                    pending[j[Tg > 0]] = False
+                    k[j] *= 4.0
+            slack = var(X_inf[rest], rest) <= vt + vtol
+            g = rest[slack]
+            X[g], kkt[g], done[g] = X_inf[g], k_inf[g], True
+            gam[g] = 0.0                             # tau -> inf, as the rule without the limit
+        # 3. bracket search in tau for the volatility root
+        todo0 = np.flatnonzero(~done)
+        if todo0.size:
+            t_lo = np.zeros(D)
+            V0 = V_lo.copy()
+            mmax = np.maximum(np.abs(mu).max(axis=1), 1e-300)
+            t_hi = np.maximum(V0, vt) / mmax
+            X_hi = X_lo.copy()
+            k_hi = k_lo.copy()
+            V_hi = V_lo.copy()
+            grow = todo0
+            for _ in range(200):
+                if grow.size == 0:
+                    break
+                Xg, kg, _ = solve(grow, t_hi[grow, None] * mu[grow], X_hi[grow])
+                Vg = var(Xg, grow)
+                X_hi[grow], k_hi[grow], V_hi[grow] = Xg, kg, Vg
+                low = Vg < vt - vtol[grow]
+                g = grow[low]
+                t_lo[g], X_lo[g], V_lo[g], k_lo[g] = t_hi[g], Xg[low], Vg[low], kg[low]
+                t_hi[g] *= 8.0
+                grow = g
+            if grow.size:   # pragma: no cover - step 2 found the largest return above target
+                raise RuntimeError(f"rule '{self.name}': target-volatility search found no "
+                                   f"bracket{where(int(grow[0]))}")
+            hit = np.abs(V_hi - vt) <= vtol
+            fin = np.zeros(D, dtype=bool)
+            fin[todo0[hit[todo0]]] = True
+            for it in range(200):
+                todo = np.flatnonzero(~done & ~fin)
+                if todo.size == 0:
+                    break
+                a = X_lo[todo]
+                b = X_hi[todo] - a
+                Sb = np.einsum("dij,dj->di", covs[todo], b)
+                # -(V(a + s b) - vt): positive at s = 0, <= 0 at s = 1
+                q2 = -np.einsum("dn,dn->d", b, Sb)
+                q1 = -2.0 * np.einsum("dn,dn->d", a, Sb)
+                q0 = vt - V_lo[todo]
+                s = _root_bracketed(q2, q1, q0)
+                if it % 3 == 2:
+                    s = np.full(todo.size, 0.5)
+                if it >= 12:
+                    s = np.clip(s, 1e-3, 1.0 - 1e-3)
+                dt = t_hi[todo] - t_lo[todo]
+                tn = t_lo[todo] + s * dt
+                Xn, kn, _ = solve(todo, tn[:, None] * mu[todo], X_hi[todo])
+                Vn = var(Xn, todo)
+                up = Vn >= vt
+                g = todo[up]
+                t_hi[g], X_hi[g], V_hi[g], k_hi[g] = tn[up], Xn[up], Vn[up], kn[up]
+                g = todo[~up]
+                t_lo[g], X_lo[g], V_lo[g], k_lo[g] = tn[~up], Xn[~up], Vn[~up], kn[~up]
+                close = np.abs(Vn - vt) <= vtol[todo]
+                g = todo[close & ~up]          # the root from below: take that end
+                t_hi[g], X_hi[g], V_hi[g], k_hi[g] = t_lo[g], X_lo[g], V_lo[g], k_lo[g]
+                tiny = dt <= 1e-14 * np.maximum(t_hi[todo], 1e-300)
+                fin[todo[close | tiny]] = True
+            if not np.all(fin[todo0]):   # pragma: no cover - the bracket always shrinks
+                raise RuntimeError(f"rule '{self.name}': target-volatility search did not "
+                                   f"converge")
+            X[todo0], kkt[todo0] = X_hi[todo0], k_hi[todo0]
+            gam[todo0] = np.where(t_hi[todo0] > 0, 1.0 / np.maximum(t_hi[todo0], 1e-300), np.inf)
+        # certificate of the volatility constraint: primal feasibility
+        Vf = var(X, allidx)
+        viol = np.maximum(Vf - vt, 0.0) / max(vt, 1e-300)
+        bad = viol > 1e-8
+        if np.any(bad):   # pragma: no cover - guarded by the searches
+            d = int(np.flatnonzero(bad)[0])
+            raise RuntimeError(f"rule '{self.name}': volatility target not met{where(d)} "
+                               f"(relative excess {viol[d]:.3g})")
+        return _clean(X, cons), np.maximum(kkt, viol), gam
+
     # ------------------------------------------------------------------ ERC
     def _erc(self, covs, single: bool):
         D, n = covs.shape[:2]
@@ -1030,10 +1226,19 @@ def _te_multiplier(rule, mu, S, w) -> float:
     d = w - p
     if float(d @ S @ d) < te2 * (1.0 - 1e-8):
         return 0.0
-    H, c, A, lo, hi, lb, ub = rule._qp_problem(mu[None, :], S[None])
-    H, c, A, lo, hi = H[0], c[0], np.asarray(A[0]), np.asarray(lo[0]), np.asarray(hi[0])
-    grad = H @ w - c
     cols = []
+    if rule.type == "target-volatility":
+        # max mu'w: a linear objective; the volatility cone's gradient 2 S w when it binds
+        cons = rule.constraints
+        A, lo, hi = cons.rows()
+        H, c, lb, ub = np.zeros_like(S), rule._excess(mu), cons.lower, cons.upper
+        v2 = rule.target ** 2
+        if abs(v2 - float(w @ S @ w)) <= 1e-9 * max(v2, 1e-300):
+            cols.append(2.0 * S @ w)
+    else:
+        H, c, A, lo, hi, lb, ub = rule._qp_problem(mu[None, :], S[None])
+        H, c, A, lo, hi = H[0], c[0], np.asarray(A[0]), np.asarray(lo[0]), np.asarray(hi[0])
+    grad = H @ w - c
     n = w.size
     tol = 1e-9
     for i in range(n):

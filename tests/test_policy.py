@@ -326,10 +326,120 @@ def test_max_sharpe_within_the_limit_meets_kkt_and_matches_cvxpy(seed):
         np.testing.assert_allclose(zero.weights(mu, S).weights, POLICY, atol=1e-12)
 
 
-def test_target_volatility_refuses_a_tracking_limit():
-    with pytest.raises(SettingsError, match="max_tracking_error is available for"):
-        make_rule("tv", "target-volatility", {"target": 0.04, "max_tracking_error": 0.01}, ASSETS,
+def _tv_case(seed, long_only):
+    """A target halfway between the least and the policy's volatility, and a limit half
+    the tracking error of the rule without it (both constraints bind in most draws)."""
+    mu, S = _problem(50 + seed)
+    extra = {} if long_only else {"long_only": False}
+    least = make_rule("m", "min-variance", extra, ASSETS).weights(mu, S).weights
+    target = 0.5 * (math.sqrt(least @ S @ least) + math.sqrt(POLICY @ S @ POLICY))
+    free = make_rule("tv", "target-volatility", {"target": target, **extra}, ASSETS).weights(mu, S)
+    te = 0.5 * tracking_error(free.weights, POLICY, S)
+    return mu, S, extra, target, te
+
+
+@pytest.mark.parametrize("long_only", [True, False])
+@pytest.mark.parametrize("seed", range(6))
+def test_target_volatility_within_the_limit_meets_kkt_and_matches_cvxpy(seed, long_only):
+    """Reference: cvxpy 1.9.3 with Clarabel on max mu'w s.t. sum(w) = 1 (w >= 0),
+    ||L'w|| <= target, ||L'(w - p)|| <= te (two second-order cones)."""
+    cp = pytest.importorskip("cvxpy")
+    mu, S, extra, target, te = _tv_case(seed, long_only)
+    rule = make_rule("tv", "target-volatility", {"target": target, "max_tracking_error": te,
+                                                 **extra}, ASSETS, policy_weights=POLICY)
+    a = rule.weights(mu, S)
+    w = a.weights
+    L = np.linalg.cholesky(S)
+    x = cp.Variable(6)
+    vol_c = cp.norm(L.T @ x) <= target
+    te_c = cp.norm(L.T @ (x - POLICY)) <= te
+    cons = [cp.sum(x) == 1, vol_c, te_c] + ([x >= 0] if long_only else [])
+    prob = cp.Problem(cp.Maximize(mu @ x), cons)
+    prob.solve(solver=cp.CLARABEL, tol_gap_abs=1e-10, tol_gap_rel=1e-10, tol_feas=1e-10)
+    assert prob.status == "optimal"
+    ref = np.asarray(x.value)
+    assert mu @ w >= mu @ ref - 1e-9                 # at least as good as the reference
+    np.testing.assert_allclose(w, ref, atol=1e-4)
+    vol, trk = math.sqrt(w @ S @ w), tracking_error(w, POLICY, S)
+    assert vol <= target * (1 + 1e-9) and trk <= te * (1 + 1e-9)    # both satisfied
+    # binding at the stated level where the reference's multiplier says the cone is active
+    if float(vol_c.dual_value) > 1e-6:
+        assert vol == pytest.approx(target, rel=1e-9)
+        assert 0 < a.implied_risk_aversion < np.inf
+    if float(te_c.dual_value) > 1e-6:
+        assert trk == pytest.approx(te, rel=1e-9)
+        assert rule.tracking_multiplier(mu, S) > 0
+    assert rule.check(mu, S, w).max <= 1e-8        # KKT with both cones' own multipliers
+    assert a.kkt <= 1e-8
+    assert sum(float(c.dual_value) > 1e-6 for c in (vol_c, te_c)) >= 1
+
+
+def test_target_volatility_cases_cover_both_cones_binding():
+    """The random cases above are not all of one kind: in most both cones bind."""
+    both = 0
+    for seed in range(6):
+        mu, S, extra, target, te = _tv_case(seed, True)
+        w = make_rule("tv", "target-volatility", {"target": target, "max_tracking_error": te},
+                      ASSETS, policy_weights=POLICY).weights(mu, S).weights
+        both += (math.sqrt(w @ S @ w) == pytest.approx(target, rel=1e-9)
+                 and tracking_error(w, POLICY, S) == pytest.approx(te, rel=1e-9))
+    assert both >= 4
+
+
+@pytest.mark.parametrize("extra", [{}, {"long_only": False}, {"budget": "cash"},
+                                   {"bounds": {"a0": [0, 0.3]}}])
+@pytest.mark.parametrize("target", [0.03, 0.04, 0.06])
+def test_target_volatility_large_limit_equals_the_rule_without_it(extra, target):
+    mu, S = _problem(61)
+    free = make_rule("tv", "target-volatility", {"target": target, **extra}, ASSETS).weights(mu, S)
+    big = make_rule("tv", "target-volatility", {"target": target, "max_tracking_error": 10.0,
+                                                **extra}, ASSETS,
+                    policy_weights=POLICY).weights(mu, S)
+    np.testing.assert_allclose(big.weights, free.weights, atol=1e-12)
+    assert big.implied_risk_aversion == pytest.approx(free.implied_risk_aversion, rel=1e-9)
+
+
+def test_target_volatility_zero_limit_returns_the_policy_or_names_both_numbers():
+    mu, S = _problem(3)
+    vp = math.sqrt(POLICY @ S @ POLICY)
+    r = make_rule("tv", "target-volatility", {"target": 1.01 * vp, "max_tracking_error": 0.0},
+                  ASSETS, policy_weights=POLICY)
+    np.testing.assert_allclose(r.weights(mu, S).weights, POLICY, atol=1e-12)
+    # a target below the least volatility within the limit: one line with both numbers
+    r = make_rule("tv", "target-volatility", {"target": 0.9 * vp, "max_tracking_error": 0.0},
+                  ASSETS, policy_weights=POLICY)
+    with pytest.raises(InfeasibleError, match=f"target volatility {0.9 * vp:.6g} is below the "
+                                              f"least volatility {vp:.6g}"):
+        r.weights(mu, S)
+    # a limit below the least tracking error the bounds allow
+    r = make_rule("tv", "target-volatility", {"target": 0.05, "max_tracking_error": 1e-4,
+                                              "bounds": {"a0": [0, 0.05]}}, ASSETS,
                   policy_weights=POLICY)
+    with pytest.raises(InfeasibleError, match="least tracking error"):
+        r.weights(mu, S)
+
+
+def test_target_volatility_batched_limit_equals_single_solves():
+    mu, S = _problem(4)
+    vp = math.sqrt(POLICY @ S @ POLICY)
+    rng = np.random.default_rng(7)
+    D = 40
+    means = mu + rng.normal(0, 0.003, (D, 6))
+    covs = np.repeat(S[None], D, 0) * rng.uniform(0.7, 1.3, (D, 1, 1))
+    target = 1.15 * vp                    # within reach in every draw (variances x 0.7..1.3)
+    rule = make_rule("tv", "target-volatility", {"target": target, "max_tracking_error": 0.01},
+                     ASSETS, policy_weights=POLICY)
+    W, kkt = rule.weights_batch_details(means, covs)
+    assert np.all(kkt <= 1e-8)
+    binds = 0
+    for d in range(D):
+        np.testing.assert_allclose(W[d], rule.weights(means[d], covs[d]).weights, atol=1e-10)
+        vol = math.sqrt(W[d] @ covs[d] @ W[d])
+        assert vol <= target * (1 + 1e-9)
+        assert tracking_error(W[d], POLICY, covs[d]) <= 0.01 * (1 + 1e-9)
+        assert rule.check(means[d], covs[d], W[d]).max <= 1e-8
+        binds += vol == pytest.approx(target, rel=1e-9)
+    assert 0 < binds < D                  # both the binding and the slack branch are used
 
 
 # --------------------------------------------------------------------------- engines
