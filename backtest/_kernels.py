@@ -126,6 +126,24 @@ def _sharpe_pieces_py(m1, m2, g1, g2):
 _sharpe_pieces = njit(cache=True)(_sharpe_pieces_py)
 
 
+def _raw_moments_py(x, y):
+    """Means and raw second moments (divisor T) of two series: (m1, m2, g1, g2)."""
+    T = x.shape[0]
+    m1 = 0.0
+    m2 = 0.0
+    g1 = 0.0
+    g2 = 0.0
+    for t in range(T):
+        m1 += x[t]
+        m2 += y[t]
+        g1 += x[t] * x[t]
+        g2 += y[t] * y[t]
+    return m1 / T, m2 / T, g1 / T, g2 / T
+
+
+_raw_moments = njit(cache=True)(_raw_moments_py)
+
+
 def circular_block_psi_py(x, y, block_length):
     """Long-run covariance of (x - m1, y - m2, x^2 - g1, y^2 - g2) from circular block sums.
 
@@ -137,19 +155,7 @@ def circular_block_psi_py(x, y, block_length):
     """
     T = x.shape[0]
     b = block_length
-    m1 = 0.0
-    m2 = 0.0
-    g1 = 0.0
-    g2 = 0.0
-    for t in range(T):
-        m1 += x[t]
-        m2 += y[t]
-        g1 += x[t] * x[t]
-        g2 += y[t] * y[t]
-    m1 /= T
-    m2 /= T
-    g1 /= T
-    g2 /= T
+    m1, m2, g1, g2 = _raw_moments(x, y)
     delta, d0, d1, d2, d3 = _sharpe_pieces(m1, m2, g1, g2)
     if math.isnan(delta):
         return np.nan, np.nan
@@ -224,19 +230,7 @@ def block_bootstrap_sharpe_py(x, y, starts, block_length, delta_hat):
                 xs[pos] = x[t]
                 ys[pos] = y[t]
                 pos += 1
-        m1 = 0.0
-        m2 = 0.0
-        g1 = 0.0
-        g2 = 0.0
-        for t in range(T):
-            m1 += xs[t]
-            m2 += ys[t]
-            g1 += xs[t] * xs[t]
-            g2 += ys[t] * ys[t]
-        m1 /= T
-        m2 /= T
-        g1 /= T
-        g2 /= T
+        m1, m2, g1, g2 = _raw_moments(xs, ys)
         delta, d0, d1, d2, d3 = _sharpe_pieces(m1, m2, g1, g2)
         if math.isnan(delta):
             out[k] = np.nan
