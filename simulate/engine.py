@@ -842,6 +842,28 @@ def run_block(spec: ResampleSpec, block_index: int) -> BlockResult:
         Picklable; :meth:`BlockResult.to_bytes` gives its durable form.
     """
     spec = spec.resolved()          # no-op for a resolved spec (prepare_study's are)
+    # BLAS splits a matrix product differently with different thread counts, which changes
+    # the last bits of the results: every block is computed with one BLAS thread, in this
+    # process or in a worker, so that the numbers cannot depend on where it ran
+    with _one_blas_thread():
+        return _run_block(spec, block_index)
+
+
+def _one_blas_thread():
+    """Context manager: BLAS limited to one thread (the controller is built once)."""
+    global _BLAS_CONTROLLER
+    if _BLAS_CONTROLLER is None:
+        from threadpoolctl import ThreadpoolController
+
+        _BLAS_CONTROLLER = ThreadpoolController()
+    return _BLAS_CONTROLLER.limit(limits=1, user_api="blas")
+
+
+#: threadpoolctl's view of this process's thread pools (built on first use).
+_BLAS_CONTROLLER = None
+
+
+def _run_block(spec: ResampleSpec, block_index: int) -> BlockResult:
     plan, ctx, fingerprint = _derived(spec)
     if not 0 <= block_index < len(plan):
         raise SettingsError(f"block index {block_index} out of range (0..{len(plan) - 1})")
