@@ -91,6 +91,8 @@ class ResampleSettings:
     attribution: bool = True
     hold_threshold: float = 0.005
     draw: str = "auto"
+    frontier_draws: int = 1000
+    self_check_draws: int = 2000
 
 
 @dataclass(frozen=True)
@@ -280,7 +282,7 @@ def _rules(items, src) -> tuple:
 def _resample(t, src) -> ResampleSettings:
     known = {"generator", "draws", "length", "seed", "degrees_of_freedom", "block_length",
              "block_size", "keep_draws", "frontier_points", "sweep_years", "sweep_draws",
-             "attribution", "hold_threshold", "draw"}
+             "attribution", "hold_threshold", "draw", "frontier_draws", "self_check_draws"}
     s = "resample"
     _check_keys(t, known, src, s)
     sweep = _get(t, "sweep_years", list, src, s, [3, 5, 10, 20, 40])
@@ -303,6 +305,8 @@ def _resample(t, src) -> ResampleSettings:
         attribution=_get(t, "attribution", bool, src, s, True),
         hold_threshold=_get(t, "hold_threshold", NUM, src, s, 0.005, low=0, high=1),
         draw=_get(t, "draw", str, src, s, "auto", choices=DRAW_PATHS),
+        frontier_draws=_get(t, "frontier_draws", int, src, s, 1000, low=1),
+        self_check_draws=_get(t, "self_check_draws", int, src, s, 2000, low=0),
     )
 
 

@@ -293,3 +293,15 @@ def test_the_cloud_of_per_draw_allocations_never_beats_the_true_frontier(study, 
         prob.solve(solver=cp.CLARABEL)
         worst = max(worst, row["expected_return"] - prob.value)
     assert worst <= 1e-7
+
+
+def test_frontier_and_self_check_draws_are_study_settings(tmp_path):
+    _write_history(tmp_path)
+    f = tmp_path / "study.toml"
+    f.write_text(STUDY.replace("frontier_points = 6",
+                               "frontier_points = 6\nfrontier_draws = 130\nself_check_draws = 0"))
+    out = tmp_path / "run"
+    assert main(["study", str(f), "--out", str(out), "--no-pack", "--quiet"]) == 0
+    s = json.loads((out / "summary.json").read_text())
+    assert s["frontiers"]["draws"] == 130
+    assert s["self_check"] == {"skipped": "self_check_draws = 0"}

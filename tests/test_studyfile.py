@@ -99,3 +99,11 @@ def test_top_level_risk_aversion_wins_and_overrides_apply():
 def test_disagreeing_mean_variance_rules_fall_back_to_one():
     text = BASE + '\n[[rules]]\nname = "other"\ntype = "mean-variance"\nrisk_aversion = 2\n'
     assert study_risk_aversion(parse_study(text)) == 1.0
+
+
+def test_frontier_and_self_check_draws_parse_and_are_checked():
+    s = parse_study(BASE.replace("seed = 20261201", "seed = 1\nfrontier_draws = 50\nself_check_draws = 0"))
+    assert s.resample.frontier_draws == 50 and s.resample.self_check_draws == 0
+    assert parse_study(BASE).resample.frontier_draws == 1000
+    with pytest.raises(SettingsError, match=r"\[resample\] frontier_draws must be >= 1"):
+        parse_study(BASE.replace("seed = 20261201", "frontier_draws = 0"))
