@@ -266,3 +266,27 @@ def block_bootstrap_sharpe_py(x, y, starts, block_length, delta_hat):
 
 
 block_bootstrap_sharpe = njit(cache=True)(block_bootstrap_sharpe_py)
+
+
+def block_bootstrap_stats_numpy(x, y, starts, b):
+    """Plain-numpy twin of :func:`block_bootstrap_sharpe`: on index arrays, all resamples
+    at once. Returns ``(delta, se)``, each shape (B,): the resampled Sharpe differences and
+    their block standard errors (divisor-T moments)."""
+    T = len(x)
+    B, L = starts.shape
+    idx = ((starts[:, :, None] + np.arange(b)) % T).reshape(B, L * b)[:, :T]
+    X, Y = x[idx], y[idx]
+    m1, m2 = X.mean(1), Y.mean(1)
+    g1, g2 = (X * X).mean(1), (Y * Y).mean(1)
+    v1, v2 = g1 - m1 ** 2, g2 - m2 ** 2
+    delta = m1 / np.sqrt(v1) - m2 / np.sqrt(v2)
+    grad = np.stack([g1 / v1 ** 1.5, -g2 / v2 ** 1.5, -m1 / (2 * v1 ** 1.5),
+                     m2 / (2 * v2 ** 1.5)], axis=1)
+    Yc = np.stack([X - m1[:, None], Y - m2[:, None], X * X - g1[:, None],
+                   Y * Y - g2[:, None]], axis=2)
+    pad = np.zeros((B, L * b, 4))
+    pad[:, :T] = Yc
+    S = pad.reshape(B, L, b, 4).sum(axis=2)
+    psi = np.einsum("blk,blm->bkm", S, S) / T
+    se = np.sqrt(np.einsum("bk,bkm,bm->b", grad, psi, grad) / T)
+    return delta, se

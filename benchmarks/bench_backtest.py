@@ -22,6 +22,8 @@ import time
 
 import numpy as np
 
+from benchmarks._machine import cpu_name
+
 
 def _single_thread():
     try:
@@ -32,14 +34,7 @@ def _single_thread():
 
 
 def _cpu() -> str:
-    try:
-        with open("/proc/cpuinfo") as f:
-            for line in f:
-                if line.startswith("model name"):
-                    return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
+    return cpu_name()
 
 
 def market(T=600, N=25, seed=20261202):
@@ -75,26 +70,6 @@ def configs(assets):
     return [BacktestConfig(make_rule(n, t, p, assets), m, c, {}) for n, t, p, m, c in spec]
 
 
-def numpy_bootstrap(x, y, starts, b):
-    """Baseline bootstrap statistics on numpy index arrays (same formulas as the kernel)."""
-    T = len(x)
-    B, L = starts.shape
-    idx = ((starts[:, :, None] + np.arange(b)) % T).reshape(B, L * b)[:, :T]
-    X, Y = x[idx], y[idx]
-    m1, m2 = X.mean(1), Y.mean(1)
-    g1, g2 = (X * X).mean(1), (Y * Y).mean(1)
-    v1, v2 = g1 - m1 ** 2, g2 - m2 ** 2
-    delta = m1 / np.sqrt(v1) - m2 / np.sqrt(v2)
-    grad = np.stack([g1 / v1 ** 1.5, -g2 / v2 ** 1.5, -m1 / (2 * v1 ** 1.5),
-                     m2 / (2 * v2 ** 1.5)], axis=1)
-    Yc = np.stack([X - m1[:, None], Y - m2[:, None], X * X - g1[:, None],
-                   Y * Y - g2[:, None]], axis=2)
-    pad = np.zeros((B, L * b, 4))
-    pad[:, :T] = Yc
-    S = pad.reshape(B, L, b, 4).sum(axis=2)
-    psi = np.einsum("blk,blm->bkm", S, S) / T
-    se = np.sqrt(np.einsum("bk,bkm,bm->b", grad, psi, grad) / T)
-    return delta, se
 
 
 def main(argv=None) -> int:
@@ -148,7 +123,7 @@ def main(argv=None) -> int:
             0, P, size=(resamples, -(-P // b)), dtype=np.int64)
         d0, se0 = _kernels.circular_block_psi(x, y, b)
         t1 = time.perf_counter()
-        d, se = numpy_bootstrap(x, y, starts, b)
+        d, se = _kernels.block_bootstrap_stats_numpy(x, y, starts, b)
         stat_np = np.abs(d - d0) / se
         t_np += time.perf_counter() - t1
         t1 = time.perf_counter()

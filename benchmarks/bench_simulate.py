@@ -29,6 +29,8 @@ import time
 
 import numpy as np
 
+from benchmarks._machine import cpu_name
+
 TARGETS = {10: 40_000, 50: 8_000, 200: 1_000}
 LENGTH = 120
 GAMMA = 3.0
@@ -43,14 +45,7 @@ def recipe(n):
 
 
 def _cpu_name():
-    try:
-        with open("/proc/cpuinfo") as f:
-            for line in f:
-                if line.startswith("model name"):
-                    return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
+    return cpu_name()
 
 
 def _load():

@@ -116,24 +116,8 @@ def test_input_validation():
 # --------------------------------------------------------------------------- Ledoit-Wolf
 
 def lw_numpy_reference(x, y, starts, b, delta_hat):
-    """Vectorised re-implementation of the bootstrap statistics on index arrays."""
-    T = len(x)
-    B, L = starts.shape
-    idx = ((starts[:, :, None] + np.arange(b)) % T).reshape(B, L * b)[:, :T]
-    X, Y = x[idx], y[idx]
-    m1, m2 = X.mean(1), Y.mean(1)
-    g1, g2 = (X * X).mean(1), (Y * Y).mean(1)
-    v1, v2 = g1 - m1 ** 2, g2 - m2 ** 2
-    delta = m1 / np.sqrt(v1) - m2 / np.sqrt(v2)
-    grad = np.stack([g1 / v1 ** 1.5, -g2 / v2 ** 1.5, -m1 / (2 * v1 ** 1.5),
-                     m2 / (2 * v2 ** 1.5)], axis=1)
-    Yc = np.stack([X - m1[:, None], Y - m2[:, None], X * X - g1[:, None],
-                   Y * Y - g2[:, None]], axis=2)
-    pad = np.zeros((B, L * b, 4))
-    pad[:, :T] = Yc
-    S = pad.reshape(B, L, b, 4).sum(axis=2)
-    psi = np.einsum("blk,blm->bkm", S, S) / T
-    se = np.sqrt(np.einsum("bk,bkm,bm->b", grad, psi, grad) / T)
+    """The kernel's plain-numpy twin (vectorised on index arrays), studentized."""
+    delta, se = _kernels.block_bootstrap_stats_numpy(x, y, starts, b)
     return np.abs(delta - delta_hat) / se
 
 
