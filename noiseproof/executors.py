@@ -89,6 +89,17 @@ def _worker_init() -> None:
         threadpool_limits(1)
     except Exception:  # pragma: no cover - optional
         pass
+    _retain_freed_memory()
+
+
+def _retain_freed_memory() -> None:
+    """The engine's chunks reuse freed memory instead of faulting in new pages (local
+    processes only; see ``simulate.retain_freed_memory``)."""
+    try:
+        from simulate import retain_freed_memory
+    except ImportError:  # pragma: no cover - a custom engine without the simulate package
+        return
+    retain_freed_memory()
 
 
 class InlineExecutor:
@@ -97,6 +108,9 @@ class InlineExecutor:
     kind = "inline"
     slots = 1
     blocks_per_task = 1
+
+    def __init__(self):
+        _retain_freed_memory()
 
     def describe(self) -> str:
         return "1 worker (this process)"

@@ -83,7 +83,7 @@ class ResampleSettings:
     seed: int = 0
     degrees_of_freedom: Optional[float] = None
     block_length: Optional[float] = None
-    block_size: int = 250
+    block_size: int = 0             # 0: automatic (see simulate.ResampleSpec)
     keep_draws: bool = False
     frontier_points: int = 21
     sweep_years: tuple = (3, 5, 10, 20, 40)
@@ -279,6 +279,18 @@ def _rules(items, src) -> tuple:
     return tuple(rules)
 
 
+def _block_size(t, src) -> int:
+    """``block_size``: a positive number of draws, or "auto" (0 here: the engine sizes the
+    blocks from the study's work)."""
+    value = t.get("block_size", "auto")
+    if value == "auto":
+        return 0
+    if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+        raise SettingsError(f"{_where(src, 'resample', 'block_size')} must be a positive integer "
+                            f"or \"auto\", not {value!r}")
+    return value
+
+
 def _resample(t, src) -> ResampleSettings:
     known = {"generator", "draws", "length", "seed", "degrees_of_freedom", "block_length",
              "block_size", "keep_draws", "frontier_points", "sweep_years", "sweep_draws",
@@ -297,7 +309,7 @@ def _resample(t, src) -> ResampleSettings:
         degrees_of_freedom=_get(t, "degrees_of_freedom", NUM, src, s, None, low=2,
                                 low_inclusive=False),
         block_length=_get(t, "block_length", NUM, src, s, None, low=1),
-        block_size=_get(t, "block_size", int, src, s, 250, low=1),
+        block_size=_block_size(t, src),
         keep_draws=_get(t, "keep_draws", bool, src, s, False),
         frontier_points=_get(t, "frontier_points", int, src, s, 21, low=2),
         sweep_years=tuple(sweep),

@@ -6,6 +6,7 @@ runners (:func:`block_plan`, :func:`run_block`, :class:`BlockResult`,
 :func:`merge_blocks`).
 """
 from .engine import (  # noqa: F401
+    auto_block_draws,
     chunk_generator,
     METRICS,
     PERCENTILES,
@@ -16,9 +17,11 @@ from .engine import (  # noqa: F401
     RuleSpec,
     block_plan,
     merge_blocks,
+    retain_freed_memory,
     run_block,
     run_resampling,
     score,
+    tile_draws,
 )
 from .generators import (  # noqa: F401
     GENERATORS,
@@ -32,7 +35,7 @@ from .closed_form import kan_zhou, squared_sharpe  # noqa: F401
 
 __all__ = [
     "ResampleSpec", "RuleSpec", "ResampleResult", "run_resampling", "Block", "BlockResult",
-    "block_plan", "run_block", "merge_blocks", "score", "METRICS", "PERCENTILES",
+    "block_plan", "run_block", "merge_blocks", "score", "retain_freed_memory", "tile_draws", "auto_block_draws", "METRICS", "PERCENTILES",
     "GENERATORS", "make_generator", "population_moments", "fit_degrees_of_freedom",
     "optimal_block_length", "CHUNK_DRAWS", "kan_zhou", "squared_sharpe",
 ]

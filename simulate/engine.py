@@ -25,6 +25,7 @@ import hashlib
 import io
 import json
 import math
+import sys
 from dataclasses import dataclass, field, replace
 from typing import Any, Callable, Iterable, Mapping, Optional
 
@@ -45,6 +46,9 @@ __all__ = [
     "run_block",
     "merge_blocks",
     "run_resampling",
+    "retain_freed_memory",
+    "tile_draws",
+    "auto_block_draws",
     "chunk_generator",
     "draw_path",
     "score",
@@ -127,7 +131,8 @@ class ResampleSpec:
         Student-t degrees of freedom and stationary-bootstrap mean block length; None
         fits / chooses them from the history.
     block_size : int
-        Draws per block (rounded up to whole chunks); memory and scheduling only.
+        Draws per block (rounded up to whole chunks); memory and scheduling only. 0 (the
+        default) sizes blocks from the study's work: see :func:`auto_block_draws`.
     keep_draws : bool
         Keep per-draw weights (``draw_arrays``).
     frontier_points : int
@@ -176,7 +181,7 @@ class ResampleSpec:
     risk_aversion: float
     degrees_of_freedom: Optional[float] = None
     block_length: Optional[float] = None
-    block_size: int = 250
+    block_size: int = 0
     keep_draws: bool = False
     frontier_points: int = 21
     frontier_rule: Optional[str] = None
@@ -209,7 +214,9 @@ class ResampleSpec:
 
     @property
     def block_draws(self) -> int:
-        """Draws per block: ``block_size`` rounded up to whole chunks."""
+        """Draws per block: ``block_size`` rounded up to whole chunks (0: automatic)."""
+        if self.block_size <= 0:
+            return auto_block_draws(self)
         return int(math.ceil(self.block_size / CHUNK_DRAWS) * CHUNK_DRAWS)
 
     @property
@@ -250,6 +257,37 @@ class ResampleSpec:
             meta.append(["policy", self.policy])
         h.update(json.dumps(meta, default=str).encode())
         return h.hexdigest()
+
+
+#: Seconds of one core's work an automatic block aims at: long enough that handing a block
+#: to a worker and merging its result (about 1 ms) are small beside it, short enough that
+#: the last blocks balance across workers and a crash loses little.
+BLOCK_SECONDS = 0.25
+#: Blocks per part an automatic size aims for at least (so that workers can share a study).
+MIN_BLOCKS = 16
+#: Largest automatic block, in draws (per-block memory with ``keep_draws``).
+MAX_BLOCK_DRAWS = 10_000
+
+
+def auto_block_draws(spec: "ResampleSpec") -> int:
+    """Draws per block when ``block_size`` is automatic: a function of the spec alone.
+
+    From a rough cost model of one draw on one core, fitted on the benchmark machine
+    (history path, T = 120: about 18, 105 and 750 microseconds at N = 10, 50 and 200
+    with one mean-variance rule): ``0.012 us * (T N + R' N^2) + 2 us * R'`` with ``R'``
+    the rules that use estimates (each counted three times with the attribution runs).
+    The block holds about :data:`BLOCK_SECONDS` of that work, in whole chunks, at most
+    ``draws / MIN_BLOCKS`` (so that a study splits into enough blocks to share) and at
+    most :data:`MAX_BLOCK_DRAWS`. Block sizes never change a number; a faster or slower
+    machine only makes blocks shorter or longer.
+    """
+    n, t = spec.n_assets, spec.length
+    solved = sum(1 for r in spec.rules if _uses_inputs(r)) * (3 if spec.attribution else 1)
+    micros = 0.012 * (t * n + max(1, solved) * n * n) + 2.0 * max(1, solved)
+    by_work = int(BLOCK_SECONDS * 1e6 / micros) // CHUNK_DRAWS
+    by_count = math.ceil(spec.draws / MIN_BLOCKS / CHUNK_DRAWS)
+    chunks = max(1, min(by_work, by_count, MAX_BLOCK_DRAWS // CHUNK_DRAWS))
+    return chunks * CHUNK_DRAWS
 
 
 def _jsonable(obj):
@@ -863,6 +901,39 @@ def _one_blas_thread():
 _BLAS_CONTROLLER = None
 
 
+def retain_freed_memory() -> bool:
+    """Ask the C allocator to keep freed memory for reuse in this process (glibc only).
+
+    By default glibc returns every freed block above 128 KiB to the operating system and
+    maps fresh memory on the next request, so each chunk's working arrays come back as new
+    pages that the kernel must fault in and zero (on the benchmark machine, about a fifth
+    of the engine's time at N = 10 to 200). Raising the mmap threshold to 32 MiB and the
+    trim threshold to 1 GiB lets the arrays of one chunk reuse the memory of the last. The
+    process then keeps up to its peak heap (tens of MiB for a study). Applied once per
+    process, by :func:`run_resampling` and by the local worker processes; never on a Dask
+    cluster's workers, whose allocator settings belong to the cluster. Numbers are
+    unaffected. Returns whether the settings were applied (False off glibc).
+    """
+    global _RETAINED
+    if _RETAINED is None:
+        _RETAINED = False
+        if sys.platform.startswith("linux"):
+            try:
+                import ctypes
+
+                mallopt = ctypes.CDLL(None).mallopt
+                mallopt.argtypes = (ctypes.c_int, ctypes.c_int)
+                # M_MMAP_THRESHOLD (-3): 32 MiB, glibc's largest; M_TRIM_THRESHOLD (-1): 1 GiB
+                _RETAINED = bool(mallopt(-3, 32 << 20)) and bool(mallopt(-1, 1 << 30))
+            except (OSError, AttributeError):
+                _RETAINED = False
+    return _RETAINED
+
+
+#: Whether :func:`retain_freed_memory` applied its settings in this process (None: not asked).
+_RETAINED = None
+
+
 def _run_block(spec: ResampleSpec, block_index: int) -> BlockResult:
     plan, ctx, fingerprint = _derived(spec)
     if not 0 <= block_index < len(plan):
@@ -876,19 +947,55 @@ def _run_block(spec: ResampleSpec, block_index: int) -> BlockResult:
         acc = _CheckAccumulator(ctx, block)
     gen = ctx.check_generator if block.part == "check" else ctx.generator
     path = ctx.path(block)
+    draw = gen.draw_moments if path == "moments" else gen.draw
+    tile = tile_draws(ctx.spec, block.length, path, block.part)
     for c in range(block.first_chunk, block.first_chunk + block.n_chunks):
         lo = c * CHUNK_DRAWS
         hi = min(lo + CHUNK_DRAWS, block.stop)
         rng = chunk_generator(spec.seed, block.spawn_part, c)
-        if path == "moments":
-            histories = gen.draw_moments(rng, hi - lo, block.length)
-        else:
-            histories = gen.draw(rng, hi - lo, block.length)
         try:
-            acc.add_chunk(histories, lo)
+            acc.add_chunk(_tiles(draw, rng, hi - lo, block.length, tile), hi - lo, lo)
         except NoiseproofError as exc:
             raise type(exc)(f"resampling ({block.part} draws {lo}..{hi - 1}): {exc}") from None
     return acc.result(fingerprint)
+
+
+#: Bytes of per-draw working arrays (histories, their centred copies, estimated
+#: covariances) one tile may hold: at N = 200 a whole chunk's arrays (some 60 MB) would not
+#: fit the cache the cores share (32 MB on the benchmark machine), a tile's do. Small
+#: assets counts keep whole chunks (N = 10: one tile of 125 draws; N = 50: 26; N = 200: 3).
+TILE_BYTES = 4 << 20
+
+
+def tile_draws(spec: "ResampleSpec", length: int, path: str, part: str = "main") -> int:
+    """Draws per tile: how many draws of a chunk are generated, estimated, optimised and
+    scored together.
+
+    A chunk (:data:`CHUNK_DRAWS` draws, the unit of randomness) is processed in tiles of
+    this many draws, drawn one after the other from the chunk's generator. The number is a
+    function of the spec alone (assets, rows, path, estimators), never of the block size
+    or the workers, so results do not depend on those; it does fix where the random stream
+    is cut and where the optimiser's warm starts restart, so changing it changes the
+    numbers (as a different seed would).
+    """
+    n = spec.n_assets
+    if part == "check":
+        keys = 1
+    else:
+        keys = max(1, len({r.estimator_key() for r in spec.rules
+                           if getattr(r.rule, "needs_mean", True)
+                           or getattr(r.rule, "needs_covariance", True)}))
+    rows = 0 if path == "moments" else 2 * length * n       # history and its centred copy
+    per_draw = 8 * (rows + (2 + keys) * n * n)               # covariances and scratch
+    return int(max(1, min(CHUNK_DRAWS, TILE_BYTES // per_draw)))
+
+
+def _tiles(draw, rng, d, length, tile):
+    """Yield ``(start, stop, histories)`` for the tiles of a chunk of ``d`` draws, drawing
+    each tile from ``rng`` only when the previous one has been used."""
+    for s in range(0, d, tile):
+        e = min(d, s + tile)
+        yield s, e, draw(rng, e - s, length)
 
 
 #: (spec, ((plan, context, fingerprint), copies of its arrays)): the last spec run_block
@@ -1002,20 +1109,28 @@ def _tracking_errors(weights, policy, cov):
 
 
 class _MainAccumulator(_Accumulator):
-    def add_chunk(self, histories, first_draw):
+    def add_chunk(self, tiles, d, first_draw):
+        """Fold one chunk of ``d`` draws, given as tiles ``(start, stop, histories)``."""
         ctx, spec = self.ctx, self.ctx.spec
-        d = histories.shape[0]
         self.n_draws += d
-        moments = _moments_for(ctx, histories)
         n_rules = len(ctx.rules)
         weights = np.empty((d, n_rules, ctx.n))
         metrics = np.empty((d, n_rules, 5))
         ok = np.empty((d, n_rules), dtype=bool)
-        for i, rs in enumerate(ctx.rules):
-            w, ok[:, i], msg = _rule_weights(ctx, i, moments[i], d)
-            self._note(rs.name, msg)
-            weights[:, i] = w
-            metrics[:, i] = score(w, ctx.mu, ctx.cov, ctx.gamma)
+        att_ok = np.zeros((d, n_rules, 2), dtype=bool)
+        att = np.full((d, n_rules, 2, 5), np.nan) if any(ctx.attrib) else None
+        front = self._frontier_arrays(d, first_draw)
+        for s, e, histories in tiles:
+            moments = _moments_for(ctx, histories)
+            for i, rs in enumerate(ctx.rules):
+                w, ok[s:e, i], msg = _rule_weights(ctx, i, moments[i], e - s)
+                self._note(rs.name, msg)
+                weights[s:e, i] = w
+                metrics[s:e, i] = score(w, ctx.mu, ctx.cov, ctx.gamma)
+            if att is not None:
+                self._attribution(moments, s, e, att, att_ok)
+            if front is not None:
+                self._frontier_tile(moments, s, e, front)
         cash = 1.0 - weights.sum(axis=2)
         self._count("ok", ok.sum(axis=0))
         self._moments("w", weights)
@@ -1041,74 +1156,84 @@ class _MainAccumulator(_Accumulator):
         if spec.keep_draws:
             self._sample("weights", weights)
         # attribution: true mean + estimated covariance, estimated mean + true covariance
-        att_ok = np.zeros((d, n_rules, 2), dtype=bool)
-        if not any(ctx.attrib):
+        self._count("att_ok", att_ok.sum(axis=0))
+        if att is None:
             # no rule attributes: every value is NaN, whose chunk moments are (0, 0, 0)
             # (what chunk_moments returns for an all-NaN chunk), without the NaN pass
-            self._count("att_ok", att_ok.sum(axis=0))
             self._zero_moments("att", (n_rules, 2, 5))
         else:
-            self._attribution(moments, d, n_rules, att_ok)
-        self._frontiers(moments, d, first_draw)
+            self._moments("att", att)
+        self._frontier_fold(front)
 
-    def _attribution(self, moments, d, n_rules, att_ok):
+    def _attribution(self, moments, s, e, att, att_ok):
+        """Attribution runs of draws ``s:e`` of the chunk into ``att`` and ``att_ok``."""
         ctx = self.ctx
-        att = np.full((d, n_rules, 2, 5), np.nan)
         for i, rs in enumerate(ctx.rules):
             if not ctx.attrib[i]:
                 continue
             m_est, s_est = moments[i]
-            w_tm, att_ok[:, i, 0], _ = _weights(rs, np.broadcast_to(ctx.mu, m_est.shape), s_est)
-            w_tc, att_ok[:, i, 1], _ = _weights(rs, m_est, np.broadcast_to(ctx.cov, s_est.shape))
-            att[:, i, 0] = score(w_tm, ctx.mu, ctx.cov, ctx.gamma)
-            att[:, i, 1] = score(w_tc, ctx.mu, ctx.cov, ctx.gamma)
-        self._count("att_ok", att_ok.sum(axis=0))
-        self._moments("att", att)
+            w_tm, att_ok[s:e, i, 0], _ = _weights(rs, np.broadcast_to(ctx.mu, m_est.shape), s_est)
+            w_tc, att_ok[s:e, i, 1], _ = _weights(rs, m_est, np.broadcast_to(ctx.cov, s_est.shape))
+            att[s:e, i, 0] = score(w_tm, ctx.mu, ctx.cov, ctx.gamma)
+            att[s:e, i, 1] = score(w_tc, ctx.mu, ctx.cov, ctx.gamma)
 
-    def _frontiers(self, moments, d, first_draw):
-        """Frontiers (Broadie 1993) and the rank-matched averaged frontier (Michaud 1998)."""
+    def _frontier_arrays(self, d, first_draw):
+        """Per-chunk frontier work arrays, or None when the chunk draws no frontiers.
+
+        Frontiers (Broadie 1993) and the rank-matched averaged frontier (Michaud 1998) are
+        drawn for the first ``frontier_draws`` draws of the study only.
+        """
         ctx, spec = self.ctx, self.ctx.spec
-        fi = ctx.frontier_index
-        if fi is not None:
-            nf = max(0, min(d, spec.frontier_draws - first_draw))
-            k = spec.frontier_points
-            if not nf:
-                # past the frontier draws: all NaN, chunk moments (0, 0, 0)
-                self._zero_moments("fr", (k, 4))
-                self._zero_moments("fw", (k, ctx.n))
-                self._count("frontier_draws", np.array([0, 0]))
-                self._count("broadie_violations", np.array([0]))
-                return
-            fr = np.full((d, k, 4), np.nan)   # estimated mean, var; actual mean, var
-            fw = np.full((d, k, ctx.n), np.nan)
-            used = 0
-            failed = 0
-            viol = 0
-            if nf:
-                from optimise import efficient_frontier
+        if ctx.frontier_index is None:
+            return None
+        k = spec.frontier_points
+        nf = max(0, min(d, spec.frontier_draws - first_draw))
+        return {"nf": nf, "k": k, "used": 0, "failed": 0, "viol": 0,
+                "fr": np.full((d, k, 4), np.nan) if nf else None,   # est. mean, var; actual
+                "fw": np.full((d, k, ctx.n), np.nan) if nf else None}
 
-                cons = ctx.frontier_constraints[0]
-                true = _true_frontier(ctx, cons)
-                m_est, s_est = moments[fi]
-                for j in range(nf):
-                    try:
-                        p = np.asarray(efficient_frontier(m_est[j], s_est[j], cons).points(k),
-                                       dtype=np.float64)
-                    except NoiseproofError as exc:
-                        failed += 1
-                        self._note("frontier", " ".join(str(exc).split()))
-                        continue
-                    fw[j] = p
-                    fr[j, :, 0] = p @ m_est[j]
-                    fr[j, :, 1] = np.einsum("kn,kn->k", p @ s_est[j], p)
-                    fr[j, :, 2] = p @ ctx.mu
-                    fr[j, :, 3] = np.einsum("kn,kn->k", p @ ctx.cov, p)
-                    used += 1
-                    viol += _broadie_violations(true, fr[j, :, 2], fr[j, :, 3])
-            self._moments("fr", fr)
-            self._moments("fw", fw)
-            self._count("frontier_draws", np.array([used, failed]))
-            self._count("broadie_violations", np.array([viol]))
+    def _frontier_tile(self, moments, s, e, front):
+        """Frontiers of draws ``s:e`` of the chunk (those among the first ``nf``)."""
+        ctx = self.ctx
+        stop = min(e, front["nf"])
+        if stop <= s:
+            return
+        from optimise import efficient_frontier
+
+        cons = ctx.frontier_constraints[0]
+        true = _true_frontier(ctx, cons)
+        m_est, s_est = moments[ctx.frontier_index]
+        fr, fw, k = front["fr"], front["fw"], front["k"]
+        for j in range(s, stop):
+            try:
+                p = np.asarray(efficient_frontier(m_est[j - s], s_est[j - s], cons).points(k),
+                               dtype=np.float64)
+            except NoiseproofError as exc:
+                front["failed"] += 1
+                self._note("frontier", " ".join(str(exc).split()))
+                continue
+            fw[j] = p
+            fr[j, :, 0] = p @ m_est[j - s]
+            fr[j, :, 1] = np.einsum("kn,kn->k", p @ s_est[j - s], p)
+            fr[j, :, 2] = p @ ctx.mu
+            fr[j, :, 3] = np.einsum("kn,kn->k", p @ ctx.cov, p)
+            front["used"] += 1
+            front["viol"] += _broadie_violations(true, fr[j, :, 2], fr[j, :, 3])
+
+    def _frontier_fold(self, front):
+        if front is None:
+            return
+        if not front["nf"]:
+            # past the frontier draws: all NaN, chunk moments (0, 0, 0)
+            self._zero_moments("fr", (front["k"], 4))
+            self._zero_moments("fw", (front["k"], self.ctx.n))
+            self._count("frontier_draws", np.array([0, 0]))
+            self._count("broadie_violations", np.array([0]))
+            return
+        self._moments("fr", front["fr"])
+        self._moments("fw", front["fw"])
+        self._count("frontier_draws", np.array([front["used"], front["failed"]]))
+        self._count("broadie_violations", np.array([front["viol"]]))
 
 
 def _true_frontier(ctx, cons):
@@ -1148,20 +1273,20 @@ def _broadie_violations(true, act_mean, act_var, rtol=1e-7) -> int:
 
 
 class _SweepAccumulator(_Accumulator):
-    def add_chunk(self, histories, first_draw):
+    def add_chunk(self, tiles, d, first_draw):
         ctx = self.ctx
-        d = histories.shape[0]
         self.n_draws += d
         valid = ctx.sweep_valid(self.block.length)
-        moments = _moments_for(ctx, histories, valid)
         n_rules = len(ctx.rules)
         metrics = np.full((d, n_rules, 5), np.nan)
         ok = np.zeros((d, n_rules), dtype=bool)
-        for i, rs in enumerate(ctx.rules):
-            if valid[i]:
-                w, ok[:, i], msg = _rule_weights(ctx, i, moments[i], d)
-                self._note(rs.name, msg)
-                metrics[:, i] = score(w, ctx.mu, ctx.cov, ctx.gamma)
+        for s, e, histories in tiles:
+            moments = _moments_for(ctx, histories, valid)
+            for i, rs in enumerate(ctx.rules):
+                if valid[i]:
+                    w, ok[s:e, i], msg = _rule_weights(ctx, i, moments[i], e - s)
+                    self._note(rs.name, msg)
+                    metrics[s:e, i] = score(w, ctx.mu, ctx.cov, ctx.gamma)
         self._count("ok", ok.sum(axis=0))
         self._moments("m", metrics)
         self._count("beats", _beats(metrics, ctx.ew))
@@ -1172,19 +1297,21 @@ class _SweepAccumulator(_Accumulator):
 class _CheckAccumulator(_Accumulator):
     """Plug-in cash-budget mean-variance rule w = S_mle^-1 m / gamma on normal histories."""
 
-    def add_chunk(self, histories, first_draw):
+    def add_chunk(self, tiles, d, first_draw):
         ctx = self.ctx
-        d, t, _ = histories.shape
         self.n_draws += d
-        if isinstance(histories, SampleMoments):
-            m = histories.mean
-            s = histories.scatter / t
-        else:
-            m = histories.mean(axis=1)
-            dev = histories - m[:, None, :]
-            s = np.matmul(dev.transpose(0, 2, 1), dev) / t
-        w = np.linalg.solve(s, m[:, :, None])[:, :, 0] / ctx.gamma
-        u = score(w, ctx.mu, ctx.cov, ctx.gamma)[:, 4]
+        u = np.empty(d)
+        for s, e, histories in tiles:
+            t = histories.shape[1]
+            if isinstance(histories, SampleMoments):
+                m = histories.mean
+                cov = histories.scatter / t
+            else:
+                m = histories.mean(axis=1)
+                dev = histories - m[:, None, :]
+                cov = np.matmul(dev.transpose(0, 2, 1), dev) / t
+            w = np.linalg.solve(cov, m[:, :, None])[:, :, 0] / ctx.gamma
+            u[s:e] = score(w, ctx.mu, ctx.cov, ctx.gamma)[:, 4]
         self._moments("u", u)
 
 
@@ -1256,6 +1383,7 @@ def _worker_init(spec=None):  # pragma: no cover - runs in worker processes
     share its plan, context and fingerprint (see :func:`_derived`)."""
     global _WORKER_SPEC
     _WORKER_SPEC = spec
+    retain_freed_memory()
     try:
         from threadpoolctl import threadpool_limits
     except ImportError:
@@ -1287,6 +1415,7 @@ def run_resampling(spec: ResampleSpec, *, workers: int = 1,
     spec = spec.resolved()
     plan = block_plan(spec)
     merger = _Merger(spec)
+    retain_freed_memory()
     if workers <= 1 or len(plan) <= 1:
         for b in plan:
             merger.add(run_block(spec, b.index))

@@ -1,0 +1,124 @@
+"""Tiles, automatic block sizes and the allocator setting: how the engine cuts its work.
+
+None of these may change a number that the settings do not fix. The checks compare the
+engine with itself (different cuts of the same work); the statistical checks against
+outside references are in test_simulate_engine.py and test_simulate_moments.py.
+"""
+import json
+import sys
+from dataclasses import replace
+
+import numpy as np
+import pytest
+
+import simulate.engine as engine
+from estimators.core import SettingsError
+from noiseproof.studyfile import load_study
+from simulate import CHUNK_DRAWS, auto_block_draws, block_plan, retain_freed_memory, run_resampling
+from simulate import tile_draws
+from tests.conftest import recipe_a
+from tests.test_simulate_engine import LO_MV, _spec
+
+
+def _dump(result):
+    s = json.loads(json.dumps(result.to_summary(), default=str))
+    s["resample"].pop("block_draws")      # the block size itself is recorded, nothing else moves
+    return json.dumps(s, sort_keys=True)
+
+
+def _rich_spec(n=8, **kw):
+    mu, cov = recipe_a(n)
+    settings = dict(draws=2 * CHUNK_DRAWS + 40, sweep_lengths=(36,), sweep_draws=130,
+                    frontier_points=5, frontier_draws=60, self_check_draws=130)
+    settings.update(kw)
+    return _spec(mu, cov, [LO_MV, ("minv", "min-variance", {}, "sample", "ledoit-wolf-identity")],
+                 **settings)
+
+
+def test_tile_size_is_a_function_of_the_spec_alone():
+    spec = _rich_spec(n=50)
+    # 4 MiB / (8 bytes * (2 T N + (2 + 2 estimators) N^2)) = 4194304 / 176000 -> 23 draws
+    assert tile_draws(spec, 120, "histories") == 4194304 // (8 * (2 * 120 * 50 + 4 * 2500))
+    assert tile_draws(spec, 120, "moments") == 4194304 // (8 * 4 * 2500)
+    assert tile_draws(_rich_spec(n=4), 120, "histories") == CHUNK_DRAWS   # small N: whole chunks
+    assert tile_draws(_rich_spec(n=400), 120, "histories") == 1
+
+
+def test_small_tiles_change_no_digit_across_blocks_and_workers(monkeypatch):
+    """With tiles far smaller than a chunk (7 draws), block size and workers still change
+    nothing: the tiles are cut by the spec, not by the scheduling."""
+    monkeypatch.setattr(engine, "TILE_BYTES", 7 * 8 * (2 * 120 * 8 + 4 * 64))
+    base = _rich_spec()
+    assert tile_draws(base, 120, "histories") == 7
+    ref = _dump(run_resampling(replace(base, block_size=1000)))
+    assert _dump(run_resampling(replace(base, block_size=CHUNK_DRAWS))) == ref
+    assert _dump(run_resampling(replace(base, block_size=CHUNK_DRAWS), workers=2)) == ref
+
+
+def test_tiles_draw_the_same_normal_histories_as_whole_chunks(monkeypatch):
+    """The normal generator's stream is cut between tiles, not reordered: tiles of one draw
+    and whole chunks see the same histories, so every statistic agrees to rounding (the
+    matrix products and the optimiser's warm starts differ in the last bits only)."""
+    base = replace(_rich_spec(), sweep_lengths=(), self_check_draws=0)
+    whole = run_resampling(base).to_summary()["rules"]
+    monkeypatch.setattr(engine, "TILE_BYTES", 1)
+    assert tile_draws(base, 120, "histories") == 1
+    tiled = run_resampling(base).to_summary()["rules"]
+    for name in whole:
+        a, b = whole[name]["population"], tiled[name]["population"]
+        for key in ("expected_return_mean", "variance_mean", "ceq_mean", "sharpe_mean"):
+            assert b[key] == pytest.approx(a[key], rel=1e-9, abs=1e-14), (name, key)
+        assert b["prob_beats_equal_weight_ceq"] == a["prob_beats_equal_weight_ceq"]
+        for asset, w in whole[name]["weights"].items():
+            assert tiled[name]["weights"][asset]["mean"] == pytest.approx(w["mean"], rel=1e-9,
+                                                                          abs=1e-12)
+
+
+def test_automatic_blocks_are_whole_chunks_sized_by_the_work():
+    small = _rich_spec(n=4, draws=200_000, attribution=False)
+    large = _rich_spec(n=200, draws=200_000, attribution=False)
+    for spec in (small, large):
+        assert spec.block_size == 0 and spec.block_draws == auto_block_draws(spec)
+        assert spec.block_draws % CHUNK_DRAWS == 0
+    assert small.block_draws == engine.MAX_BLOCK_DRAWS          # cheap draws: the cap
+    assert CHUNK_DRAWS <= large.block_draws < small.block_draws  # costly draws: fewer per block
+    # at least MIN_BLOCKS blocks where the draws allow it, never less than a chunk
+    few = _rich_spec(n=4, draws=2_000, sweep_lengths=(), self_check_draws=0)
+    assert len(block_plan(few)) == engine.MIN_BLOCKS
+    tiny = _rich_spec(n=4, draws=100, sweep_lengths=(), self_check_draws=0)
+    assert tiny.block_draws == CHUNK_DRAWS and len(block_plan(tiny)) == 1
+    # an explicit size wins, rounded up to chunks
+    assert replace(small, block_size=300).block_draws == 3 * CHUNK_DRAWS
+    # and the size never reaches the numbers
+    assert _dump(run_resampling(few)) == _dump(run_resampling(replace(few, block_size=1000)))
+
+
+def test_study_file_block_size_auto_or_positive(tmp_path):
+    data = tmp_path / "h.csv"
+    rows = np.random.default_rng(0).normal(0.005, 0.04, size=(60, 3))
+    data.write_text("date,a,b,c\n" + "\n".join(
+        f"2020-{1 + i // 28:02d}-{1 + i % 28:02d}," + ",".join(f"{v:.6f}" for v in r)
+        for i, r in enumerate(rows)) + "\n")
+
+    def study(line):
+        p = tmp_path / "s.toml"
+        p.write_text(f'[data]\npath = "h.csv"\n[[rules]]\nname = "mv"\ntype = "mean-variance"\n'
+                     f'[resample]\nlength = 24\n{line}\n')
+        return load_study(p)
+
+    assert study("").resample.block_size == 0
+    assert study('block_size = "auto"').resample.block_size == 0
+    assert study("block_size = 500").resample.block_size == 500
+    for bad in ("block_size = 0", "block_size = -5", 'block_size = "big"', "block_size = 2.5"):
+        with pytest.raises(SettingsError, match=r"block_size must be a positive integer or \"auto\""):
+            study(bad)
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="glibc's mallopt")
+def test_retain_freed_memory_applies_once_on_glibc():
+    import platform
+
+    first = retain_freed_memory()
+    assert retain_freed_memory() is first          # asked once per process
+    if platform.libc_ver()[0] == "glibc":
+        assert first is True
