@@ -19,6 +19,7 @@ __all__ = [
     "bartlett_factors_py",
     "symmetrize_half",
     "symmetrize_half_py",
+
     "score_columns",
     "score_columns_py",
     "add_row",

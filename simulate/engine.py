@@ -963,7 +963,8 @@ def _run_block(spec: ResampleSpec, block_index: int) -> BlockResult:
 #: Bytes of per-draw working arrays (histories, their centred copies, estimated
 #: covariances) one tile may hold: at N = 200 a whole chunk's arrays (some 60 MB) would not
 #: fit the cache the cores share (32 MB on the benchmark machine), a tile's do. Small
-#: assets counts keep whole chunks (N = 10: one tile of 125 draws; N = 50: 26; N = 200: 3).
+#: assets counts keep whole chunks (history path, T = 120, one estimator: N = 10: one tile of
+#: 125 draws; N = 50: 26; N = 200: 3; the moments path holds no histories: N = 50: 125).
 TILE_BYTES = 4 << 20
 
 
@@ -985,8 +986,11 @@ def tile_draws(spec: "ResampleSpec", length: int, path: str, part: str = "main")
         keys = max(1, len({r.estimator_key() for r in spec.rules
                            if getattr(r.rule, "needs_mean", True)
                            or getattr(r.rule, "needs_covariance", True)}))
-    rows = 0 if path == "moments" else 2 * length * n       # history and its centred copy
-    per_draw = 8 * (rows + (2 + keys) * n * n)               # covariances and scratch
+    if path == "moments":
+        per_draw = 8 * keys * n * n                           # the drawn moments are small
+    else:
+        # the history and its centred copy; the covariances and scratch
+        per_draw = 8 * (2 * length * n + (2 + keys) * n * n)
     return int(max(1, min(CHUNK_DRAWS, TILE_BYTES // per_draw)))
 
 

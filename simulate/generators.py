@@ -35,7 +35,7 @@ from scipy import optimize, special
 
 from estimators.core import DataError, SettingsError, SingularCovarianceError
 
-from . import _kernels
+from . import _kernels, _random
 
 __all__ = [
     "GENERATORS",
@@ -99,6 +99,12 @@ def covariance_factor(cov: np.ndarray, what: str = "population covariance") -> n
             f"generators need a positive-definite covariance") from None
 
 
+def _normals(rng: np.random.Generator, shape) -> np.ndarray:
+    """``rng.standard_normal(shape)``: the same numbers and generator state, drawn by a
+    compiled loop (``simulate._random``; about 2.7 times faster on the benchmark machine)."""
+    return _random.standard_normal_into(rng, np.empty(shape))
+
+
 # --------------------------------------------------------------------------- generators
 
 @dataclass(frozen=True)
@@ -122,7 +128,7 @@ class NormalGenerator:
     def draw(self, rng: np.random.Generator, count: int, length: int) -> np.ndarray:
         """``count`` histories of ``length`` rows, shape ``(count, length, N)``."""
         n = self.mean.shape[0]
-        z = rng.standard_normal((count * length, n))
+        z = _normals(rng, (count * length, n))
         x = z @ self._chol_t
         _kernels.add_row(x, self._mean64)          # x += mean, without numpy's short rows
         return x.reshape(count, length, n)
@@ -149,9 +155,9 @@ class NormalGenerator:
         if df < n:
             raise SettingsError(f"the moments path needs T - 1 >= N (T = {length}, N = {n}): "
                                 f"the scatter matrix would be singular")
-        z = rng.standard_normal((count, n))
+        z = _normals(rng, (count, n))
         chi = rng.chisquare(np.arange(df, df - n, -1, dtype=np.float64), size=(count, n))
-        low = rng.standard_normal((count, n * (n - 1) // 2))
+        low = _normals(rng, (count, n * (n - 1) // 2))
         # A: sqrt(chi) on the diagonal, the normals below it row by row (tril_indices
         # order), zeros above; then W = (L A)(L A)' made exactly symmetric. Two kernels
         # replace the fancy indexing and the transposed copy (same numbers to the bit).
@@ -216,7 +222,7 @@ class StudentTGenerator:
     def draw(self, rng: np.random.Generator, count: int, length: int) -> np.ndarray:
         n = self.mean.shape[0]
         nu = float(self.degrees_of_freedom)
-        z = rng.standard_normal((count * length, n))
+        z = _normals(rng, (count * length, n))
         g = rng.chisquare(nu, size=count * length)
         x = z @ self._chol_t
         x *= np.sqrt((nu - 2.0) / g)[:, None]

@@ -39,7 +39,7 @@ def test_tile_size_is_a_function_of_the_spec_alone():
     spec = _rich_spec(n=50)
     # 4 MiB / (8 bytes * (2 T N + (2 + 2 estimators) N^2)) = 4194304 / 176000 -> 23 draws
     assert tile_draws(spec, 120, "histories") == 4194304 // (8 * (2 * 120 * 50 + 4 * 2500))
-    assert tile_draws(spec, 120, "moments") == 4194304 // (8 * 4 * 2500)
+    assert tile_draws(spec, 120, "moments") == 4194304 // (8 * 2 * 2500)
     assert tile_draws(_rich_spec(n=4), 120, "histories") == CHUNK_DRAWS   # small N: whole chunks
     assert tile_draws(_rich_spec(n=400), 120, "histories") == 1
 
