@@ -252,7 +252,7 @@ class ResampleSpec:
                 self.frontier_points, self.frontier_rule, self.frontier_draws,
                 list(self.sweep_lengths), self.sweep_draws, self.attribution,
                 self.hold_threshold, self.draw, self.self_check_draws, self.metric_sample,
-                CHUNK_DRAWS]
+                CHUNK_DRAWS, ["tile_bytes", TILE_BYTES]]   # tiles cut the random stream
         if self.policy is not None:    # appended only when set: older fingerprints hold
             meta.append(["policy", self.policy])
         h.update(json.dumps(meta, default=str).encode())
@@ -263,8 +263,12 @@ class ResampleSpec:
 #: to a worker and merging its result (about 1 ms) are small beside it, short enough that
 #: the last blocks balance across workers and a crash loses little.
 BLOCK_SECONDS = 0.25
-#: Blocks per part an automatic size aims for at least (so that workers can share a study).
+#: Blocks per part an automatic size aims for at least (so that workers can share a study),
+#: as long as each block still holds :data:`MIN_BLOCK_SECONDS` of work.
 MIN_BLOCKS = 16
+#: Shortest automatic block, in seconds of one core's work (a block is written to disk
+#: with an fsync in a batch; a few milliseconds of work per block would be overhead).
+MIN_BLOCK_SECONDS = 0.05
 #: Largest automatic block, in draws (per-block memory with ``keep_draws``).
 MAX_BLOCK_DRAWS = 10_000
 
@@ -276,17 +280,22 @@ def auto_block_draws(spec: "ResampleSpec") -> int:
     (history path, T = 120: about 18, 105 and 750 microseconds at N = 10, 50 and 200
     with one mean-variance rule): ``0.012 us * (T N + R' N^2) + 2 us * R'`` with ``R'``
     the rules that use estimates (each counted three times with the attribution runs).
-    The block holds about :data:`BLOCK_SECONDS` of that work, in whole chunks, at most
-    ``draws / MIN_BLOCKS`` (so that a study splits into enough blocks to share) and at
-    most :data:`MAX_BLOCK_DRAWS`. Block sizes never change a number; a faster or slower
+    The block holds about :data:`BLOCK_SECONDS` of that work, in whole chunks; less when
+    that leaves a study fewer than :data:`MIN_BLOCKS` blocks to share among workers, but
+    never less than :data:`MIN_BLOCK_SECONDS` of work; and at most
+    :data:`MAX_BLOCK_DRAWS` draws. Block sizes never change a number; a faster or slower
     machine only makes blocks shorter or longer.
     """
     n, t = spec.n_assets, spec.length
     solved = sum(1 for r in spec.rules if _uses_inputs(r)) * (3 if spec.attribution else 1)
     micros = 0.012 * (t * n + max(1, solved) * n * n) + 2.0 * max(1, solved)
-    by_work = int(BLOCK_SECONDS * 1e6 / micros) // CHUNK_DRAWS
+    target = int(BLOCK_SECONDS * 1e6 / micros) // CHUNK_DRAWS
+    shortest = int(MIN_BLOCK_SECONDS * 1e6 / micros) // CHUNK_DRAWS
     by_count = math.ceil(spec.draws / MIN_BLOCKS / CHUNK_DRAWS)
-    chunks = max(1, min(by_work, by_count, MAX_BLOCK_DRAWS // CHUNK_DRAWS))
+    largest = max(spec.draws, spec.n_sweep_draws if spec.sweep_lengths else 0,
+                  spec.self_check_draws)
+    chunks = max(1, min(target, max(by_count, shortest), MAX_BLOCK_DRAWS // CHUNK_DRAWS,
+                        math.ceil(largest / CHUNK_DRAWS)))     # no block beyond every part
     return chunks * CHUNK_DRAWS
 
 
@@ -1019,12 +1028,13 @@ def _derived(spec: ResampleSpec):
     global _LAST_SPEC
     last, cached = _LAST_SPEC
     arrays = (spec.population_mean, spec.population_cov, spec.history)
-    if last is spec and all(a is None and b is None or a is not None and b is not None
-                            and np.array_equal(a, b) for a, b in zip(arrays, cached[1])):
+    if last is spec and cached[2] == TILE_BYTES and all(
+            a is None and b is None or a is not None and b is not None and np.array_equal(a, b)
+            for a, b in zip(arrays, cached[1])):
         return cached[0]
     derived = (block_plan(spec), _Context(spec), spec.fingerprint())
     _LAST_SPEC = (spec, (derived, tuple(None if a is None else np.array(a, copy=True)
-                                        for a in arrays)))
+                                        for a in arrays), TILE_BYTES))
     return derived
 
 
@@ -1808,6 +1818,7 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
         "draw": (f"{draw_path(spec, spec.length)[0]} (setting '{spec.draw}')"),
         "draw_path_reason": draw_path(spec, spec.length)[1],
         "chunk_draws": CHUNK_DRAWS, "block_draws": spec.block_draws,
+        "tile_draws": tile_draws(spec, spec.length, draw_path(spec, spec.length)[0]),
         "risk_aversion": gamma, "hold_threshold": spec.hold_threshold,
         "weight_percentile_resolution": WEIGHT_BIN / 2,
         "percentile_definition": "inverted empirical distribution function on fixed bins of "

@@ -50,7 +50,14 @@ def test_small_tiles_change_no_digit_across_blocks_and_workers(monkeypatch):
     monkeypatch.setattr(engine, "TILE_BYTES", 7 * 8 * (2 * 120 * 8 + 4 * 64))
     base = _rich_spec()
     assert tile_draws(base, 120, "histories") == 7
-    ref = _dump(run_resampling(replace(base, block_size=1000)))
+    first = run_resampling(replace(base, block_size=1000))
+    assert first.to_summary()["resample"]["tile_draws"] == 7
+    # a block computed with other tiles belongs to other numbers: the fingerprint says so
+    fingerprint = base.fingerprint()
+    monkeypatch.setattr(engine, "TILE_BYTES", 8 << 20)
+    assert base.fingerprint() != fingerprint
+    monkeypatch.setattr(engine, "TILE_BYTES", 7 * 8 * (2 * 120 * 8 + 4 * 64))
+    ref = _dump(first)
     assert _dump(run_resampling(replace(base, block_size=CHUNK_DRAWS))) == ref
     assert _dump(run_resampling(replace(base, block_size=CHUNK_DRAWS), workers=2)) == ref
 
@@ -82,15 +89,18 @@ def test_automatic_blocks_are_whole_chunks_sized_by_the_work():
         assert spec.block_draws % CHUNK_DRAWS == 0
     assert small.block_draws == engine.MAX_BLOCK_DRAWS          # cheap draws: the cap
     assert CHUNK_DRAWS <= large.block_draws < small.block_draws  # costly draws: fewer per block
-    # at least MIN_BLOCKS blocks where the draws allow it, never less than a chunk
+    # MIN_BLOCKS blocks where each still holds MIN_BLOCK_SECONDS of (modelled) work
+    costly = _rich_spec(n=60, draws=8_000, sweep_lengths=(), self_check_draws=0)
+    assert len(block_plan(costly)) == engine.MIN_BLOCKS
+    # a small, cheap study is not cut into blocks of a few milliseconds
     few = _rich_spec(n=4, draws=2_000, sweep_lengths=(), self_check_draws=0)
-    assert len(block_plan(few)) == engine.MIN_BLOCKS
+    assert len(block_plan(few)) == 1
     tiny = _rich_spec(n=4, draws=100, sweep_lengths=(), self_check_draws=0)
     assert tiny.block_draws == CHUNK_DRAWS and len(block_plan(tiny)) == 1
     # an explicit size wins, rounded up to chunks
     assert replace(small, block_size=300).block_draws == 3 * CHUNK_DRAWS
     # and the size never reaches the numbers
-    assert _dump(run_resampling(few)) == _dump(run_resampling(replace(few, block_size=1000)))
+    assert _dump(run_resampling(few)) == _dump(run_resampling(replace(few, block_size=125)))
 
 
 def test_study_file_block_size_auto_or_positive(tmp_path):
