@@ -318,35 +318,39 @@ def main(argv=None):
         d_engine = int({10: 200_000, 50: 40_000, 200: 5_000}.get(n, 5_000) * scale) or 250
         d_slsqp = max(2, int({10: 200, 50: 40, 200: 3}.get(n, 10) * scale))
         d_qp = max(10, int({10: 3000, 50: 1000, 200: 100}.get(n, 200) * scale))
-        one = two = 0.0
+        one = two = two_short = 0.0
+        short = max(1000, d_engine // 8)
         for _ in range(args.rounds):            # interleaved; the best of each
             one = max(one, engine_rate(n, d_engine, 1, draw="histories"))
             two = max(two, engine_rate(n, d_engine, 2, draw="histories"))
-        short = max(1000, d_engine // 8)
-        two_short = engine_rate(n, short, 2, draw="histories")
+            two_short = max(two_short, engine_rate(n, short, 2, draw="histories"))
         # wall = fixed + draws / rate: the fixed cost of a two-worker run (starting the
-        # processes, their first chunks in fresh memory, the last block's wait)
-        fixed = max(0.0, (short / two_short - d_engine / two * short / d_engine)
-                    / (1 - short / d_engine))
+        # processes, their first chunks in fresh memory, the last block's wait) and the
+        # steady rate once the workers run, from the long and the short run
+        wall_long, wall_short = d_engine / two, short / two_short
+        steady = (d_engine - short) / max(wall_long - wall_short, 1e-9)
+        fixed = max(0.0, wall_short - short / steady)
         fl = floor_rate(n, max(250, min(d_engine, 40_000) // 2))
         sl = slsqp_loop(n, d_slsqp)
         qp = quadprog_loop(n, d_qp)
-        rows.append((n, one, two, fl, sl, qp, short, two_short, fixed))
+        rows.append((n, one, two, fl, sl, qp, short, two_short, fixed, steady))
         print(f"  N={n}: done (engine {d_engine} draws x {args.rounds} rounds, SLSQP {d_slsqp}, "
               f"quadprog {d_qp})", flush=True)
     print()
     head = ("N", "engine 1 core", "engine 2 workers", "2w/1w", "CPU us/draw 1w / 2w",
-            "2 workers, short run", "2w start-up (s)", "SLSQP loop", "quadprog loop",
+            "2 workers, short run", "2w start-up (s)", "2w steady", "steady/1w",
+            "SLSQP loop", "quadprog loop",
             "floor", "engine/quadprog", "engine/floor", "target 1 core", "met")
     print(" | ".join(head))
     print(" | ".join("---" for _ in head))
-    for n, one, two, fl, sl, qp, short, two_short, fixed in rows:
+    for n, one, two, fl, sl, qp, short, two_short, fixed, steady in rows:
         target = TARGETS.get(n)
         c1 = _CPU_LOG.get((n, 1, "histories", None))
         c2 = _CPU_LOG.get((n, 2, "histories", None))
         cpu = f"{c1:.1f} / {c2:.1f}" if c1 and c2 else "-"
         print(" | ".join([str(n), f"{one:,.0f}", f"{two:,.0f}", f"{two / one:.2f}x", cpu,
                           f"{two_short:,.0f} ({short:,} draws)", f"{fixed:.2f}",
+                          f"{steady:,.0f}", f"{steady / one:.2f}x",
                           f"{sl:,.1f}",
                           f"{qp:,.0f}", f"{fl:,.0f}", f"{one / qp:.2f}x", f"{one / fl:.2f}",
                           f"{target:,}" if target else "-",
@@ -354,8 +358,10 @@ def main(argv=None):
     print("(draws per second; T = 120, long-only mean-variance, sample estimates, gamma = 3;")
     print(" the engine on the history path, draw = 'histories', automatic block size (about")
     print(" 0.25 s of work each); engine figures are the best of the interleaved rounds. CPU us/draw: CPU")
-    print(" seconds of the process and its workers per draw (last round). 2w start-up: the fixed")
-    print(" part of a two-worker run's wall time, from the long and the short run)")
+    print(" seconds of the process and its workers per draw (last round). 2w start-up and 2w")
+    print(" steady: wall = start-up + draws / steady rate, solved from the long and the short")
+    print(" two-worker runs; the start-up is the fork, each worker's first chunks in memory the")
+    print(" parent never used, and the wait for the last block)")
 
     if not args.no_moments:
         print()
