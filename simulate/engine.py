@@ -476,14 +476,27 @@ def _self_check_applies(spec: ResampleSpec):
 def block_plan(spec: ResampleSpec) -> list:
     """The study's blocks, in merge order; fixed by the spec (not by the workers).
 
-    Main blocks first, then the sweep lengths in order, then the self-check.
+    Main blocks first, then the sweep lengths in order, then the self-check. Blocks hold
+    ``spec.block_draws`` draws; with the automatic size (``block_size = 0``) the last blocks
+    of a part that needs more than one block halve what is left (in whole chunks), so that
+    the last blocks are short and the workers finish together.
     """
     size = spec.block_draws
+    taper = spec.block_size <= 0
     blocks = []
 
     def add(part, total, length, k=-1):
-        for start in range(0, total, size):
-            blocks.append(Block(len(blocks), start, min(start + size, total), part, length, k))
+        start = 0
+        while start < total:
+            rest = total - start
+            step = size
+            if taper and total > size and rest < 2 * size:
+                # automatic blocks shrink towards the end of each part (half of what is
+                # left, in whole chunks), so that workers finish together
+                step = max(CHUNK_DRAWS, math.ceil(rest / 2 / CHUNK_DRAWS) * CHUNK_DRAWS)
+            stop = min(start + step, total)
+            blocks.append(Block(len(blocks), start, stop, part, length, k))
+            start = stop
 
     add("main", spec.draws, spec.length)
     for k, t in enumerate(spec.sweep_lengths):

@@ -91,7 +91,13 @@ def test_automatic_blocks_are_whole_chunks_sized_by_the_work():
     assert CHUNK_DRAWS <= large.block_draws < small.block_draws  # costly draws: fewer per block
     # MIN_BLOCKS blocks where each still holds MIN_BLOCK_SECONDS of (modelled) work
     costly = _rich_spec(n=60, draws=8_000, sweep_lengths=(), self_check_draws=0)
-    assert len(block_plan(costly)) == engine.MIN_BLOCKS
+    sizes = [b.stop - b.start for b in block_plan(costly)]
+    assert costly.block_draws == 500 and sum(sizes) == 8_000
+    # 14 full blocks, then the last 1,000 draws halve towards the end: 500, 250, 125, 125
+    assert sizes == [500] * 14 + [500, 250, 125, 125]
+    assert all(s % CHUNK_DRAWS == 0 for s in sizes)
+    # an explicit size is taken as it is: no taper
+    assert [b.stop - b.start for b in block_plan(replace(costly, block_size=500))] == [500] * 16
     # a small, cheap study is not cut into blocks of a few milliseconds
     few = _rich_spec(n=4, draws=2_000, sweep_lengths=(), self_check_draws=0)
     assert len(block_plan(few)) == 1
@@ -132,3 +138,12 @@ def test_retain_freed_memory_applies_once_on_glibc():
     assert retain_freed_memory() is first          # asked once per process
     if platform.libc_ver()[0] == "glibc":
         assert first is True
+
+
+def test_tapered_automatic_plan_changes_no_digit():
+    spec = _rich_spec(n=8, draws=2_000, sweep_lengths=(), self_check_draws=0, frontier_points=0)
+    sizes = [b.stop - b.start for b in block_plan(spec)]
+    assert sizes == [1000, 500, 250, 125, 125]
+    ref = _dump(run_resampling(replace(spec, block_size=CHUNK_DRAWS)))
+    assert _dump(run_resampling(spec)) == ref
+    assert _dump(run_resampling(spec, workers=2)) == ref
