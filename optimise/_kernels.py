@@ -1173,6 +1173,97 @@ def greedy_fill_rows(score, lower, cap, left0, out):
             left = left - add
 
 
+def separable_start_rows(H, c, lower, cap, out, done):
+    """Start points of batched long-only QPs: the minimiser of the separable problem.
+
+    For each draw, ``min sum_i (h_i / 2 w_i^2 - c_i w_i)`` subject to ``sum w = 1`` and
+    ``lower <= w <= cap``, with ``h_i = H[d, i, i]``: the full problem with the
+    covariances between assets dropped. Its solution is ``w_i = clip((c_i - lam) / h_i)``
+    with the one ``lam`` at which the weights sum to 1 (a water level): bisection on the
+    non-increasing sum narrows ``lam`` to a relative 1e-9, then the level is solved
+    exactly from the assets left free there. Its support is usually close to the full
+    problem's, so the active-set method starts a few changes away from the optimum (at
+    N = 50 about 5 iterations instead of 9 from the best-asset vertex). Any feasible point
+    is a valid start; this one only saves iterations. Rows with a non-positive or
+    non-finite ``h_i`` or a non-finite ``c_i`` are left as they are (the caller fills them
+    with another start first).
+
+    Parameters
+    ----------
+    H : ndarray, shape (D, N, N)
+    c : ndarray, shape (D, N)
+    lower, cap : ndarray, shape (N,)
+        Lower bounds and the most each weight can reach (``sum(lower) <= 1 <= sum(cap)``).
+    out : ndarray, shape (D, N)
+        Rows written with the start where it applies.
+    done : ndarray of bool, shape (D,)
+        Out: whether row ``d`` of ``out`` was written.
+    """
+    D, n = c.shape
+    w = np.empty(n)
+    ih = np.empty(n)
+    ch = np.empty(n)
+    for d in range(D):
+        ok = True
+        lam_hi = -np.inf
+        lam_lo = np.inf
+        for i in range(n):
+            h = H[d, i, i]
+            if not (h > 0.0 and math.isfinite(h) and math.isfinite(c[d, i])):
+                ok = False
+                break
+            ih[i] = 1.0 / h
+            ch[i] = c[d, i] * ih[i]
+            a = c[d, i] - h * lower[i]         # at or above this level, w_i = lower_i
+            b = c[d, i] - h * cap[i]           # at or below this level, w_i = cap_i
+            if a > lam_hi:
+                lam_hi = a
+            if b < lam_lo:
+                lam_lo = b
+        done[d] = ok
+        if not ok:
+            continue
+        scale = abs(lam_lo) + abs(lam_hi)
+        for _ in range(64):                    # sum(lam_lo) >= 1 >= sum(lam_hi)
+            if lam_hi - lam_lo <= 1e-9 * scale:
+                break
+            mid = 0.5 * (lam_lo + lam_hi)
+            tot = 0.0
+            for i in range(n):
+                tot += min(max(ch[i] - mid * ih[i], lower[i]), cap[i])
+            if tot > 1.0:
+                lam_lo = mid
+            else:
+                lam_hi = mid
+        # exact level for the assets free at the bracket's midpoint
+        mid = 0.5 * (lam_lo + lam_hi)
+        num = -1.0
+        den = 0.0
+        for i in range(n):
+            v = ch[i] - mid * ih[i]
+            if v <= lower[i]:
+                num += lower[i]
+            elif v >= cap[i]:
+                num += cap[i]
+            else:
+                num += ch[i]
+                den += ih[i]
+        lam = num / den if den > 0.0 else mid
+        tot = 0.0
+        for i in range(n):
+            w[i] = min(max(ch[i] - lam * ih[i], lower[i]), cap[i])
+            tot += w[i]
+        # put the rounding left in the budget on the largest weight that has room
+        j = -1
+        for i in range(n):
+            if lower[i] < w[i] < cap[i] and (j < 0 or w[i] > w[j]):
+                j = i
+        if j >= 0:
+            w[j] = min(max(w[j] + (1.0 - tot), lower[j]), cap[j])
+        for i in range(n):
+            out[d, i] = w[i]
+
+
 # ----------------------------------------------------------------------------------------
 # compile: each name below becomes a numba kernel. :func:`plain_twin` executes this same
 # source with an identity decorator, giving undecorated Python twins for the tests.
@@ -1199,6 +1290,7 @@ cov_checks = _compile(cov_checks)
 kkt_batch = _compile(kkt_batch)
 path_slopes = _compile(path_slopes)
 greedy_fill_rows = _compile(greedy_fill_rows)
+separable_start_rows = _compile(separable_start_rows)
 
 
 def plain_twin():

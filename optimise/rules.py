@@ -502,15 +502,28 @@ class Rule:
         return self._cold_points(H, c)
 
     def _cold_points(self, H, c):
-        """Cold starts (D, N): with box bounds, full budget and no groups, the vertex that
-        fills the best single assets first (score ``c_i - H_ii / 2``), so the active-set
-        method adds the few assets a long-only solution holds instead of removing most of
-        N from an interior point; otherwise the constraints' feasible point."""
+        """Cold starts (D, N). With box bounds, full budget and no groups: the minimiser
+        of the problem without the covariances between assets (``separable_start_rows``;
+        a water level over ``(c_i - lam) / H_ii``), whose support is usually close to the
+        optimum's, so the active-set method needs few changes; where a draw's diagonal
+        does not allow it, the vertex that fills the best single assets first (score
+        ``c_i - H_ii / 2``). Otherwise the constraints' feasible point."""
         cons = self.constraints
         D, n = c.shape
         if cons.bounded and not cons.group_names and cons.budget == "full":
-            score = c - 0.5 * np.diagonal(H, axis1=1, axis2=2)
-            return _greedy_fill_fast(score, cons.lower, cons.upper)
+            lower = np.ascontiguousarray(cons.lower, dtype=np.float64)
+            cap = np.ascontiguousarray(np.minimum(cons.upper, lower + 1.0 - lower.sum()),
+                                       dtype=np.float64)
+            x0 = np.empty((D, n))
+            done = np.zeros(D, dtype=bool)
+            K.separable_start_rows(np.ascontiguousarray(H, dtype=np.float64),
+                                   np.ascontiguousarray(c, dtype=np.float64), lower, cap, x0,
+                                   done)
+            if not done.all():
+                rest = ~done
+                score = c[rest] - 0.5 * np.diagonal(H[rest], axis1=1, axis2=2)
+                x0[rest] = _greedy_fill_fast(score, cons.lower, cons.upper)
+            return x0
         return np.broadcast_to(cons.feasible_point, (D, n)).copy()
 
     def _max_returns(self, means, need=None):

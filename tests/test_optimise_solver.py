@@ -461,3 +461,58 @@ def test_batch_equals_loop_with_singular_covariances(type_, params):
     np.testing.assert_allclose(W, loop, atol=1e-10)
     for d in range(0, D, 6):
         assert r.check(means[d], covs[d], W[d]).max < 1e-9
+
+
+def test_separable_start_is_the_separable_minimiser():
+    """The batched QP's cold start (optimise._kernels.separable_start_rows) solves the
+    problem without the off-diagonal covariances exactly: against cvxpy (a general-purpose
+    convex solver) and the problem's KKT conditions (a common water level for the free
+    weights, the bound weights on the right side of it); the plain twin gives the same bits;
+    rows with a diagonal it cannot use are left to the caller."""
+    from optimise import _kernels as K
+
+    twin = K.plain_twin()["separable_start_rows"]
+    rng = np.random.default_rng(2026)
+    for n, lower, upper in [(10, np.zeros(10), np.ones(10)),
+                            (25, np.zeros(25), np.full(25, 0.12)),
+                            (8, np.full(8, 0.02), np.linspace(0.1, 0.6, 8))]:
+        D = 12
+        a = rng.normal(size=(D, n, n))
+        H = a @ a.transpose(0, 2, 1) / n + 0.05 * np.eye(n)
+        c = rng.normal(0.0, 0.5, size=(D, n))
+        cap = np.minimum(upper, lower + 1.0 - lower.sum())
+        out = np.full((D, n), np.nan)
+        done = np.zeros(D, dtype=bool)
+        K.separable_start_rows(H, c, lower, cap, out, done)
+        out2 = np.full((D, n), np.nan)
+        done2 = np.zeros(D, dtype=bool)
+        twin(H, c, lower, cap, out2, done2)
+        assert done.all() and np.array_equal(done, done2)
+        assert np.array_equal(out.view(np.int64), out2.view(np.int64))
+        for d in range(D):
+            h, w = np.diag(H[d]), out[d]
+            assert abs(w.sum() - 1.0) <= 1e-12
+            assert np.all(w >= lower) and np.all(w <= cap)
+            level = c[d] - h * w
+            free = (w > lower + 1e-12) & (w < cap - 1e-12)
+            at_low, at_cap = w <= lower + 1e-12, w >= cap - 1e-12
+            if free.any():
+                lam = level[free].mean()
+                np.testing.assert_allclose(level[free], lam, rtol=0, atol=1e-9)
+                assert np.all(level[at_low] <= lam + 1e-9)
+                assert np.all(level[at_cap] >= lam - 1e-9)
+            else:       # every weight at a bound: some level separates the two groups
+                top_low = level[at_low].max(initial=-np.inf)
+                assert top_low <= level[at_cap].min(initial=np.inf) + 1e-9
+            x = cp.Variable(n)
+            cp.Problem(cp.Minimize(0.5 * cp.sum(cp.multiply(h, cp.square(x))) - c[d] @ x),
+                       [cp.sum(x) == 1, x >= lower, x <= cap]).solve()
+            np.testing.assert_allclose(w, x.value, atol=1e-6)
+    # a draw with a zero variance or a non-finite mean is left to the caller's start
+    H = np.stack([np.eye(3), np.diag([1.0, 0.0, 1.0]), np.eye(3)])
+    c = np.array([[0.1, 0.2, 0.3], [0.1, 0.2, 0.3], [0.1, np.nan, 0.3]])
+    out = np.full((3, 3), -7.0)
+    done = np.ones(3, dtype=bool)
+    K.separable_start_rows(H, c, np.zeros(3), np.ones(3), out, done)
+    assert done.tolist() == [True, False, False]
+    assert np.all(out[1:] == -7.0)
