@@ -69,23 +69,19 @@ def machine_rates():
         for _ in range(reps):
             a @ a
         gemm = 2 * 600 ** 3 * reps / (time.perf_counter() - t) / 1e9
-        buf = np.empty(2_000_000)
-        normals = {}
-        for name, bg in (("PCG64", np.random.PCG64), ("SFC64", np.random.SFC64)):
-            g = np.random.Generator(bg(0))
-            g.standard_normal(out=buf)
-            t = time.perf_counter()
-            for _ in range(5):
-                g.standard_normal(out=buf)
-            normals[name] = 5 * buf.size / (time.perf_counter() - t)
         from simulate._random import standard_normal_into
 
-        g = np.random.Generator(np.random.SFC64(0))
-        standard_normal_into(g, buf)
-        t = time.perf_counter()
-        for _ in range(5):
-            standard_normal_into(g, buf)
-        normals["compiled"] = 5 * buf.size / (time.perf_counter() - t)
+        buf = np.empty(2_000_000)
+        normals = {}
+        for name, bg, fill in (("PCG64", np.random.PCG64, None), ("SFC64", np.random.SFC64, None),
+                               ("compiled", np.random.SFC64, standard_normal_into)):
+            g = np.random.Generator(bg(0))
+            draw = (lambda: g.standard_normal(out=buf)) if fill is None else (lambda: fill(g, buf))
+            draw()
+            t = time.perf_counter()
+            for _ in range(5):
+                draw()
+            normals[name] = 5 * buf.size / (time.perf_counter() - t)
     return gemm, normals
 
 
@@ -357,11 +353,11 @@ def main(argv=None):
                           ("yes" if one >= target else "no") if target else "-"]))
     print("(draws per second; T = 120, long-only mean-variance, sample estimates, gamma = 3;")
     print(" the engine on the history path, draw = 'histories', automatic block size (about")
-    print(" 0.25 s of work each); engine figures are the best of the interleaved rounds. CPU us/draw: CPU")
-    print(" seconds of the process and its workers per draw (last round). 2w start-up and 2w")
-    print(" steady: wall = start-up + draws / steady rate, solved from the long and the short")
-    print(" two-worker runs; the start-up is the fork, each worker's first chunks in memory the")
-    print(" parent never used, and the wait for the last block)")
+    print(" 0.25 s of work each); engine figures are the best of the interleaved rounds. CPU")
+    print(" us/draw: CPU seconds of the process and its workers per draw (last round).")
+    print(" 2w start-up and 2w steady: wall = start-up + draws / steady rate, solved from the")
+    print(" long and the short two-worker runs; the start-up is the fork, each worker's first")
+    print(" chunks in memory the parent never used, and the wait for the last block)")
 
     if not args.no_moments:
         print()

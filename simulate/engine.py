@@ -1005,9 +1005,7 @@ def tile_draws(spec: "ResampleSpec", length: int, path: str, part: str = "main")
     if part == "check":
         keys = 1
     else:
-        keys = max(1, len({r.estimator_key() for r in spec.rules
-                           if getattr(r.rule, "needs_mean", True)
-                           or getattr(r.rule, "needs_covariance", True)}))
+        keys = max(1, len({r.estimator_key() for r in spec.rules if _uses_inputs(r)}))
     if path == "moments":
         per_draw = 8 * keys * n * n                           # the drawn moments are small
     else:
@@ -1041,13 +1039,12 @@ def _derived(spec: ResampleSpec):
     global _LAST_SPEC
     last, cached = _LAST_SPEC
     arrays = (spec.population_mean, spec.population_cov, spec.history)
-    if last is spec and cached[2] == TILE_BYTES and all(
-            a is None and b is None or a is not None and b is not None and np.array_equal(a, b)
-            for a, b in zip(arrays, cached[1])):
+    if last is spec and all(a is None and b is None or a is not None and b is not None
+                            and np.array_equal(a, b) for a, b in zip(arrays, cached[1])):
         return cached[0]
     derived = (block_plan(spec), _Context(spec), spec.fingerprint())
     _LAST_SPEC = (spec, (derived, tuple(None if a is None else np.array(a, copy=True)
-                                        for a in arrays), TILE_BYTES))
+                                        for a in arrays)))
     return derived
 
 
@@ -1824,14 +1821,15 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
         self_check = {"skipped": reason}
 
     gen = ctx.generator.describe()
+    path, path_reason = draw_path(spec, spec.length)
     resample = {
         "generator": gen, "draws": spec.draws, "length": spec.length, "T": spec.length,
         "seed": spec.seed, "n_assets": ctx.n, "assets": assets,
-        "draw_path": draw_path(spec, spec.length)[0], "draw_setting": spec.draw,
-        "draw": (f"{draw_path(spec, spec.length)[0]} (setting '{spec.draw}')"),
-        "draw_path_reason": draw_path(spec, spec.length)[1],
+        "draw_path": path, "draw_setting": spec.draw,
+        "draw": f"{path} (setting '{spec.draw}')",
+        "draw_path_reason": path_reason,
         "chunk_draws": CHUNK_DRAWS, "block_draws": spec.block_draws,
-        "tile_draws": tile_draws(spec, spec.length, draw_path(spec, spec.length)[0]),
+        "tile_draws": tile_draws(spec, spec.length, path),
         "risk_aversion": gamma, "hold_threshold": spec.hold_threshold,
         "weight_percentile_resolution": WEIGHT_BIN / 2,
         "percentile_definition": "inverted empirical distribution function on fixed bins of "

@@ -168,12 +168,13 @@ class NormalGenerator:
         chi = rng.chisquare(np.arange(df, df - n, -1, dtype=np.float64), size=(count, n))
         low = _normals(rng, (count, n * (n - 1) // 2))
         # A: sqrt(chi) on the diagonal, the normals below it row by row (tril_indices
-        # order), zeros above; then W = (L A)(L A)' made exactly symmetric. Two kernels
-        # replace the fancy indexing and the transposed copy (same numbers to the bit).
+        # order), zeros above; then W = (L A)(L A)', exactly symmetric
         if n >= BLOCKED_WISHART_MIN_N:
-            # the same W with the products in 2 x 2 blocks (half the multiply-adds)
+            # the products in 2 x 2 blocks (half the multiply-adds)
             w = _kernels.wishart_blocked(self._chol, chi, low, np.empty((count, n, n)))
         else:
+            # two kernels replace the fancy indexing and the transposed copy of the
+            # numpy form (same numbers to the bit)
             a = _kernels.bartlett_factors(chi, low, np.empty((count, n, n)))
             b = np.matmul(self._chol_t.T, a)
             w = np.matmul(b, b.transpose(0, 2, 1))

@@ -4,26 +4,16 @@ None of these may change a number that the settings do not fix. The checks compa
 engine with itself (different cuts of the same work); the statistical checks against
 outside references are in test_simulate_engine.py and test_simulate_moments.py.
 """
-import json
 import sys
 from dataclasses import replace
 
-import numpy as np
 import pytest
 
 import simulate.engine as engine
-from estimators.core import SettingsError
-from noiseproof.studyfile import load_study
-from simulate import CHUNK_DRAWS, auto_block_draws, block_plan, retain_freed_memory, run_resampling
-from simulate import tile_draws
+from simulate import (CHUNK_DRAWS, auto_block_draws, block_plan, retain_freed_memory,
+                      run_resampling, tile_draws)
 from tests.conftest import recipe_a
-from tests.test_simulate_engine import LO_MV, _spec
-
-
-def _dump(result):
-    s = json.loads(json.dumps(result.to_summary(), default=str))
-    s["resample"].pop("block_draws")      # the block size itself is recorded, nothing else moves
-    return json.dumps(s, sort_keys=True)
+from tests.test_simulate_engine import LO_MV, _dump, _spec
 
 
 def _rich_spec(n=8, **kw):
@@ -70,7 +60,8 @@ def test_tiles_draw_the_same_normal_histories_as_whole_chunks(monkeypatch):
     whole = run_resampling(base).to_summary()["rules"]
     monkeypatch.setattr(engine, "TILE_BYTES", 1)
     assert tile_draws(base, 120, "histories") == 1
-    tiled = run_resampling(base).to_summary()["rules"]
+    # a new spec object: run_block keeps what it derived from the last one it saw
+    tiled = run_resampling(replace(base)).to_summary()["rules"]
     for name in whole:
         a, b = whole[name]["population"], tiled[name]["population"]
         for key in ("expected_return_mean", "variance_mean", "ceq_mean", "sharpe_mean"):
@@ -107,27 +98,6 @@ def test_automatic_blocks_are_whole_chunks_sized_by_the_work():
     assert replace(small, block_size=300).block_draws == 3 * CHUNK_DRAWS
     # and the size never reaches the numbers
     assert _dump(run_resampling(few)) == _dump(run_resampling(replace(few, block_size=125)))
-
-
-def test_study_file_block_size_auto_or_positive(tmp_path):
-    data = tmp_path / "h.csv"
-    rows = np.random.default_rng(0).normal(0.005, 0.04, size=(60, 3))
-    data.write_text("date,a,b,c\n" + "\n".join(
-        f"2020-{1 + i // 28:02d}-{1 + i % 28:02d}," + ",".join(f"{v:.6f}" for v in r)
-        for i, r in enumerate(rows)) + "\n")
-
-    def study(line):
-        p = tmp_path / "s.toml"
-        p.write_text(f'[data]\npath = "h.csv"\n[[rules]]\nname = "mv"\ntype = "mean-variance"\n'
-                     f'[resample]\nlength = 24\n{line}\n')
-        return load_study(p)
-
-    assert study("").resample.block_size == 0
-    assert study('block_size = "auto"').resample.block_size == 0
-    assert study("block_size = 500").resample.block_size == 500
-    for bad in ("block_size = 0", "block_size = -5", 'block_size = "big"', "block_size = 2.5"):
-        with pytest.raises(SettingsError, match=r"block_size must be a positive integer or \"auto\""):
-            study(bad)
 
 
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="glibc's mallopt")

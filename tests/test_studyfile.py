@@ -107,3 +107,17 @@ def test_frontier_and_self_check_draws_parse_and_are_checked():
     assert parse_study(BASE).resample.frontier_draws == 1000
     with pytest.raises(SettingsError, match=r"\[resample\] frontier_draws must be >= 1"):
         parse_study(BASE.replace("seed = 20261201", "frontier_draws = 0"))
+
+
+def test_block_size_is_auto_or_a_positive_integer():
+    """``[resample] block_size``: "auto" (the default; 0 in the settings, sized by the engine)
+    or a positive integer; anything else is named."""
+    assert parse_study(BASE, Path("/tmp/s.toml")).resample.block_size == 0
+    for value, want in (('"auto"', 0), ("500", 500)):
+        text = BASE.replace("seed = 20261201", f"seed = 20261201\nblock_size = {value}")
+        assert parse_study(text, Path("/tmp/s.toml")).resample.block_size == want
+    for bad in ("0", "-5", '"big"', "2.5", "true"):
+        text = BASE.replace("seed = 20261201", f"seed = 20261201\nblock_size = {bad}")
+        with pytest.raises(SettingsError, match=r"\[resample\] block_size must be a positive "
+                                                r"integer or \"auto\""):
+            parse_study(text, Path("/tmp/s.toml"))
