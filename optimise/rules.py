@@ -202,13 +202,19 @@ class Rule:
         return Allocation(w, cash, self.type, None if kkt is None else float(kkt[0]),
                           None if gam is None else float(gam[0]))
 
-    def weights_batch(self, means, covariances) -> np.ndarray:
-        """Weights for D sets of inputs in one call (warm-started batched kernel).
+    def weights_batch(self, means, covariances, *, warm: bool = True) -> np.ndarray:
+        """Weights for D sets of inputs in one call (batched kernel).
 
         Parameters
         ----------
         means : ndarray, shape (D, N) or None
         covariances : ndarray, shape (D, N, N) or None
+        warm : bool
+            Let the active-set solver start each problem from the previous problem's
+            solution when that is a better start than its own cold start (helps for
+            neighbouring problems such as overlapping backtest windows). Pass False for
+            unrelated problems, such as independent resampled draws, to skip the test.
+            The weights do not depend on it (the final working set decides them).
 
         Returns
         -------
@@ -216,7 +222,7 @@ class Rule:
             Risky-asset weights; with ``budget = "cash"`` the cash is ``1 - sum``.
         """
         means, covs = self._iv(means, covariances, batch=True)
-        W, _, _ = self._solve(means, covs, single=False)
+        W, _, _ = self._solve(means, covs, single=False, warm=warm)
         return W
 
     def weights_batch_details(self, means, covariances):
@@ -347,7 +353,7 @@ class Rule:
         return means, covs
 
     # ------------------------------------------------------------------ dispatch
-    def _solve(self, means, covs, single: bool):
+    def _solve(self, means, covs, single: bool, warm: bool = True):
         t = self.type
         n = self.constraints.n_assets
         D = means.shape[0]
@@ -372,7 +378,7 @@ class Rule:
             return self._target_vol(means, covs, single)
         if self.max_tracking_error is not None:
             return self._qp_te(means, covs, single)
-        return self._qp(means, covs, single)
+        return self._qp(means, covs, single, warm)
 
     # ------------------------------------------------------------------ QP rules
     def _excess(self, mu):
@@ -603,12 +609,12 @@ class Rule:
         self._raise_kkt(kkt, single)
         return X, Z, NU, kkt
 
-    def _qp(self, means, covs, single: bool):
+    def _qp(self, means, covs, single: bool, warm: bool = True):
         cons = self.constraints
         self._check_conditioning(covs, single)     # only when the weights are unbounded
         H, c, A, lo, hi, lb, ub = self._qp_problem(means, covs)
         x0 = self._starts(means, covs, H, c, A, lo, hi, lb, ub, single)
-        X, Z, NU, kkt = self._qp_core(H, c, A, lo, hi, lb, ub, x0, single)
+        X, Z, NU, kkt = self._qp_core(H, c, A, lo, hi, lb, ub, x0, single, warm=warm)
         if self.type == "max-sharpe":
             kappa = X.sum(axis=1)
             bad = kappa <= 1e-12 * np.max(np.abs(X), axis=1)

@@ -15,13 +15,8 @@ __all__ = [
     "stationary_indices_py",
     "bin_counts",
     "bin_counts_py",
-    "bartlett_factors",
-    "bartlett_factors_py",
-    "symmetrize_half",
-    "symmetrize_half_py",
-    "wishart_blocked",
-    "wishart_blocked_py",
-
+    "wishart_triangular",
+    "wishart_triangular_py",
     "score_columns",
     "score_columns_py",
     "add_row",
@@ -112,147 +107,92 @@ def bin_counts_py(values, low, width, n_bins, zero_tol, counts):
 bin_counts = njit(cache=True, nogil=True)(bin_counts_py)
 
 
-def bartlett_factors_py(chi, low, out):
-    """Lower-triangular Bartlett factors ``A`` of a chunk of Wishart draws, into ``out``.
+def wishart_triangular_py(chol, chi, low, out):
+    """Wishart matrices ``W = (L A)(L A)'`` of a chunk from their Bartlett factors.
 
-    Parameters
-    ----------
-    chi : ndarray, shape (D, N), float64
-        Chi-square variates; ``A[d, i, i] = sqrt(chi[d, i])``.
-    low : ndarray, shape (D, N (N - 1) / 2), float64
-        Standard normals, placed below the diagonal row by row (the order of
-        ``numpy.tril_indices(N, -1)``).
-    out : ndarray, shape (D, N, N), float64
-        Written in full: the diagonal, the normals below it and zeros above it.
-    """
-    d_count, n = chi.shape
-    for d in range(d_count):
-        k = 0
-        for i in range(n):
-            for j in range(i):
-                out[d, i, j] = low[d, k]
-                k += 1
-            out[d, i, i] = np.sqrt(chi[d, i])
-            for j in range(i + 1, n):
-                out[d, i, j] = 0.0
-    return out
+    ``L = chol`` is lower triangular; ``A`` is lower triangular with ``A[i, i] =
+    sqrt(chi[d, i])`` and the normals of ``low[d]`` below the diagonal, row by row (the
+    order of ``numpy.tril_indices(N, -1)``). Both products use only the non-zero
+    triangles, about N^3 / 3 multiply-adds in all (two dense products: 4 N^3):
 
+    * ``Bt = (L A)' = A' L'``, row by row: ``Bt[j, :] = sum_{k >= j} A[k, j] L'[k, :]``;
+    * the lower triangle of ``W = Bt' Bt``: ``W[i, c] = sum_{k <= c} Bt[k, i] Bt[k, c]``,
+      mirrored to the upper one, so ``W`` is exactly symmetric.
 
-bartlett_factors = njit(cache=True, nogil=True)(bartlett_factors_py)
-
-
-def symmetrize_half_py(w):
-    """``w <- (w + w') / 2`` per matrix, in place, in one pass.
-
-    Parameters
-    ----------
-    w : ndarray, shape (D, N, N), float64
-        Each entry becomes ``(w[d, i, j] + w[d, j, i]) * 0.5``: the same two roundings as
-        ``w += w.transpose(0, 2, 1).copy(); w *= 0.5``, so the result is identical to the
-        last bit, and exactly symmetric.
-    """
-    d_count, n, _ = w.shape
-    for d in range(d_count):
-        for i in range(n):
-            for j in range(i, n):
-                v = (w[d, i, j] + w[d, j, i]) * 0.5
-                w[d, i, j] = v
-                w[d, j, i] = v
-    return w
-
-
-symmetrize_half = njit(cache=True, nogil=True)(symmetrize_half_py)
-
-
-def wishart_blocked_py(chol, chi, low, out):
-    """Wishart matrices ``W = (L A)(L A)'`` of a chunk from their Bartlett factors, with
-    the products cut in 2 x 2 blocks so that the zeros of the two triangular factors are
-    never multiplied.
-
-    ``L = chol`` (lower triangular) and ``A`` (lower triangular, ``A[i, i] =
-    sqrt(chi[d, i])``, the normals of ``low[d]`` below the diagonal row by row, as
-    :func:`bartlett_factors`). With ``h = N // 2``: ``B11 = L11 A11``, ``B21 = L21 A11 +
-    L22 A21``, ``B22 = L22 A22`` (``B12 = 0``), then ``W11 = B11 B11'``, ``W21 = B21 B11'``,
-    ``W22 = B21 B21' + B22 B22'``: eight half-size matrix products (BLAS) instead of two
-    full ones, half the multiply-adds. The upper half is mirrored, so ``W`` is exactly
-    symmetric. Needs N >= 2.
+    The sums run over ``k`` in groups of four (padding rows of zeros at the end), and the
+    rows are padded with zeros to a multiple of eight entries so that the inner loops are
+    whole vector lengths; the indices in the inner loops are unsigned so that the compiler
+    can vectorise them (a signed index carries numba's negative-index wraparound). No
+    fused multiply-add is allowed: each sum is the same rounded operations whatever the
+    vector width, so ``W`` does not depend on the CPU's instruction set.
 
     Parameters
     ----------
     chol : ndarray, shape (N, N), float64
+        Lower-triangular factor of the scale matrix (the upper triangle is not read).
     chi : ndarray, shape (D, N), float64
+        Chi-square variates.
     low : ndarray, shape (D, N (N - 1) / 2), float64
+        Standard normals.
     out : ndarray, shape (D, N, N), float64
         Written in full.
     """
     d_count, n = chi.shape
-    h = n // 2
-    m = n - h
-    l11 = np.ascontiguousarray(chol[:h, :h])
-    l21 = np.ascontiguousarray(chol[h:, :h])
-    l22 = np.ascontiguousarray(chol[h:, h:])
-    a11 = np.zeros((h, h))
-    a21 = np.empty((m, h))
-    a22 = np.zeros((m, m))
-    b11 = np.empty((h, h))
-    b21 = np.empty((m, h))
-    b22 = np.empty((m, m))
-    b11t = np.empty((h, h))
-    b21t = np.empty((h, m))
-    b22t = np.empty((m, m))
-    t21 = np.empty((m, h))
-    w11 = np.empty((h, h))
-    w21 = np.empty((m, h))
-    w22 = np.empty((m, m))
-    t22 = np.empty((m, m))
+    w8 = (n + 7) // 8 * 8                     # padded row width
+    p = n + 4                                 # rows, with four of zeros for the last group
+    lt = np.zeros(p * w8)                     # lt[k, c] = L[c, k], zero for c < k
+    for k in range(n):
+        for c in range(k, n):
+            lt[k * w8 + c] = chol[c, k]
+    bt = np.zeros(p * w8)                     # rows of (L A)'
+    av = np.zeros(p)                          # column j of A (rows k >= j), zeros past N
+    w = np.zeros(n * w8)                      # lower triangle of W, padded rows
     for d in range(d_count):
-        k = 0
-        for i in range(n):
-            for j in range(i):
-                v = low[d, k]
-                k += 1
-                if i < h:
-                    a11[i, j] = v
-                elif j < h:
-                    a21[i - h, j] = v
-                else:
-                    a22[i - h, j - h] = v
-            if i < h:
-                a11[i, i] = np.sqrt(chi[d, i])
-            else:
-                a22[i - h, i - h] = np.sqrt(chi[d, i])
-        np.dot(l11, a11, b11)
-        np.dot(l21, a11, b21)
-        np.dot(l22, a21, t21)
-        b21 += t21
-        np.dot(l22, a22, b22)
-        b11t[:, :] = b11.T
-        b21t[:, :] = b21.T
-        b22t[:, :] = b22.T
-        np.dot(b11, b11t, w11)
-        np.dot(b21, b11t, w21)
-        np.dot(b21, b21t, w22)
-        np.dot(b22, b22t, t22)
-        w22 += t22
+        for j in range(n):
+            av[j] = np.sqrt(chi[d, j])
+            for k in range(j + 1, n):
+                av[k] = low[d, k * (k - 1) // 2 + j]
+            jo = j * w8
+            for c in range(w8):
+                bt[jo + c] = 0.0
+            for k in range(j, n, 4):
+                a0 = av[k]
+                a1 = av[k + 1]
+                a2 = av[k + 2]
+                a3 = av[k + 3]
+                o0 = k * w8
+                o1 = o0 + w8
+                o2 = o1 + w8
+                o3 = o2 + w8
+                for c in range((k // 8) * 8, w8):
+                    bt[np.uint64(jo + c)] += (a0 * lt[np.uint64(o0 + c)] + a1 * lt[np.uint64(o1 + c)]
+                                              + a2 * lt[np.uint64(o2 + c)] + a3 * lt[np.uint64(o3 + c)])
         o = out[d]
-        for i in range(h):
-            for j in range(i + 1):
-                v = w11[i, j]
-                o[i, j] = v
-                o[j, i] = v
-        for i in range(m):
-            for j in range(h):
-                v = w21[i, j]
-                o[h + i, j] = v
-                o[j, h + i] = v
-            for j in range(i + 1):
-                v = w22[i, j]
-                o[h + i, h + j] = v
-                o[h + j, h + i] = v
+        for i in range(n):
+            io = i * w8
+            ce = (i + 8) // 8 * 8                 # columns 0..i, padded
+            for c in range(ce):
+                w[io + c] = 0.0
+            for k in range(0, i + 1, 4):
+                o0 = k * w8
+                o1 = o0 + w8
+                o2 = o1 + w8
+                o3 = o2 + w8
+                b0 = bt[o0 + i]
+                b1 = bt[o1 + i]
+                b2 = bt[o2 + i]
+                b3 = bt[o3 + i]
+                for c in range((k // 8) * 8, ce):
+                    w[np.uint64(io + c)] += (b0 * bt[np.uint64(o0 + c)] + b1 * bt[np.uint64(o1 + c)]
+                                             + b2 * bt[np.uint64(o2 + c)] + b3 * bt[np.uint64(o3 + c)])
+            for c in range(i + 1):
+                v = w[io + c]
+                o[i, c] = v
+                o[c, i] = v
     return out
 
 
-wishart_blocked = njit(cache=True, nogil=True)(wishart_blocked_py)
+wishart_triangular = njit(cache=True, nogil=True)(wishart_triangular_py)
 
 
 def score_columns_py(er, var, half_gamma, out):

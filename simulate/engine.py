@@ -77,7 +77,7 @@ class RuleSpec:
     ----------
     rule : optimise.Rule
         Needs ``name``, ``type``, ``params``, ``needs_mean``, ``needs_covariance``,
-        ``weights(mean, cov)`` and ``weights_batch(means, covs)``.
+        ``weights(mean, cov)`` and ``weights_batch(means, covs, warm=False)``.
     mean, covariance : str
         Estimator names (``estimators.MEAN_ESTIMATORS`` / ``COVARIANCE_ESTIMATORS``).
     params : dict
@@ -255,9 +255,16 @@ class ResampleSpec:
                 CHUNK_DRAWS, ["tile_bytes", TILE_BYTES]]   # tiles cut the random stream
         if self.policy is not None:    # appended only when set: older fingerprints hold
             meta.append(["policy", self.policy])
+        meta.append(["numerics", NUMERICS])
         h.update(json.dumps(meta, default=str).encode())
         return h.hexdigest()
 
+
+#: Version of the arithmetic behind a block's numbers, part of the fingerprint: raised
+#: whenever a code change alters the numbers of the same study (even in the last bits), so
+#: that ``--resume`` recomputes the blocks an older version wrote instead of merging them.
+#: 2: the moments path's Wishart matrix from the triangles alone (``wishart_triangular``).
+NUMERICS = 2
 
 #: Seconds of one core's work an automatic block aims at: long enough that handing a block
 #: to a worker and merging its result (about 1 ms) are small beside it, short enough that
@@ -847,7 +854,9 @@ def _weights(rs: RuleSpec, means, covs):
     means = np.ascontiguousarray(means)
     covs = np.ascontiguousarray(covs)
     try:
-        w = np.asarray(rs.rule.weights_batch(means, covs), dtype=np.float64)
+        # independent draws: the previous draw's solution is no better a start than the
+        # cold one, so the solver does not test it
+        w = np.asarray(rs.rule.weights_batch(means, covs, warm=False), dtype=np.float64)
         ok = np.all(np.isfinite(w), axis=1)
         msg = None if ok.all() else f"rule '{rs.name}' returned non-finite weights"
         if not ok.all():

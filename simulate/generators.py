@@ -99,13 +99,6 @@ def covariance_factor(cov: np.ndarray, what: str = "population covariance") -> n
             f"generators need a positive-definite covariance") from None
 
 
-#: From this many assets on, the moments path forms the Wishart matrix with products in
-#: 2 x 2 blocks (``_kernels.wishart_blocked``): 12.6 against 14.3 us per draw at N = 50
-#: and 68 against 107 us at N = 100 on the benchmark machine; slower below about 32
-#: assets (1.2 against 0.5 us at N = 10), where the two dense products stay.
-BLOCKED_WISHART_MIN_N = 40
-
-
 def _normals(rng: np.random.Generator, shape) -> np.ndarray:
     """``rng.standard_normal(shape)``: the same numbers and generator state, drawn by a
     compiled loop (``simulate._random``; about 2.7 times faster on the benchmark machine)."""
@@ -168,17 +161,8 @@ class NormalGenerator:
         chi = rng.chisquare(np.arange(df, df - n, -1, dtype=np.float64), size=(count, n))
         low = _normals(rng, (count, n * (n - 1) // 2))
         # A: sqrt(chi) on the diagonal, the normals below it row by row (tril_indices
-        # order), zeros above; then W = (L A)(L A)', exactly symmetric
-        if n >= BLOCKED_WISHART_MIN_N:
-            # the products in 2 x 2 blocks (half the multiply-adds)
-            w = _kernels.wishart_blocked(self._chol, chi, low, np.empty((count, n, n)))
-        else:
-            # two kernels replace the fancy indexing and the transposed copy of the
-            # numpy form (same numbers to the bit)
-            a = _kernels.bartlett_factors(chi, low, np.empty((count, n, n)))
-            b = np.matmul(self._chol_t.T, a)
-            w = np.matmul(b, b.transpose(0, 2, 1))
-            _kernels.symmetrize_half(w)
+        # order), zeros above; W = (L A)(L A)' from the triangles alone, exactly symmetric
+        w = _kernels.wishart_triangular(self._chol, chi, low, np.empty((count, n, n)))
         mean = z @ self._chol_t
         mean *= 1.0 / math.sqrt(length)
         mean += self.mean

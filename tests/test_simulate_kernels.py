@@ -98,37 +98,6 @@ def test_greedy_fill_kernel_matches_numpy_reference(rng):
         assert np.all(fast >= lower) and np.all(fast <= np.maximum(upper, lower))
 
 
-def test_bartlett_factors_match_twin_and_numpy_indexing(rng):
-    """The Bartlett-factor kernel against its twin and against the numpy construction it
-    replaced (zeros, sqrt on the diagonal, normals at ``tril_indices(N, -1)``)."""
-    for n in (1, 2, 5, 13):
-        d = 9
-        chi = rng.chisquare(np.arange(40.0, 40.0 - n, -1), size=(d, n))
-        low = rng.standard_normal((d, n * (n - 1) // 2))
-        fast = K.bartlett_factors(chi, low, np.full((d, n, n), np.nan))
-        slow = K.bartlett_factors_py(chi, low, np.full((d, n, n), np.nan))
-        ref = np.zeros((d, n, n))
-        ii = np.arange(n)
-        ref[:, ii, ii] = np.sqrt(chi)
-        rows, cols = np.tril_indices(n, -1)
-        ref[:, rows, cols] = low
-        assert np.array_equal(fast, ref) and np.array_equal(slow, ref)
-
-
-def test_symmetrize_half_matches_twin_and_numpy(rng):
-    """(w + w') / 2 in place: bit-identical to ``w += w.T.copy(); w *= 0.5``."""
-    for n in (1, 3, 17):
-        w = rng.normal(size=(6, n, n)) * 10.0 ** rng.integers(-8, 8, size=(6, n, n))
-        ref = w.copy()
-        ref += ref.transpose(0, 2, 1).copy()
-        ref *= 0.5
-        fast = K.symmetrize_half(w.copy())
-        slow = K.symmetrize_half_py(w.copy())
-        assert np.array_equal(fast.view(np.int64), ref.view(np.int64))
-        assert np.array_equal(slow.view(np.int64), ref.view(np.int64))
-        assert np.array_equal(fast, fast.transpose(0, 2, 1))
-
-
 def _score_numpy(er, var, gamma):
     """The numpy form the score kernel replaced (reference for the bit-for-bit check)."""
     var = np.maximum(var, 0.0)

@@ -48,34 +48,53 @@ def test_drawn_moments_have_the_right_distribution():
     assert abs(c) < 4 / np.sqrt(draws)
 
 
-def test_blocked_wishart_from_40_assets():
-    """From BLOCKED_WISHART_MIN_N assets the moments path forms W with 2 x 2 block products:
-    the same W as the two dense products to rounding (the plain twin to the bit), exactly
-    symmetric, and with the Wishart moments (E[S] = Sigma; Var(S_ij) = (S_ii S_jj +
-    S_ij^2) / (T - 1), a standard Wishart moment; scipy.stats.wishart's variance)."""
-    from simulate import _kernels as K
-    from simulate.generators import BLOCKED_WISHART_MIN_N
+def _dense_wishart(chol, chi, low):
+    """W = (L A)(L A)' by numpy: A built with ``tril_indices`` (the Bartlett factor of Smith
+    & Hocking 1972: sqrt(chi) on the diagonal, normals below it), two dense products."""
+    d, n = chi.shape
+    a = np.zeros((d, n, n))
+    ii = np.arange(n)
+    a[:, ii, ii] = np.sqrt(chi)
+    rows, cols = np.tril_indices(n, -1)
+    a[:, rows, cols] = low
+    b = np.matmul(chol, a)
+    return np.matmul(b, b.transpose(0, 2, 1))
 
-    n, t = BLOCKED_WISHART_MIN_N, 60
+
+@pytest.mark.parametrize("n", [1, 2, 5, 8, 9, 13, 40])
+def test_triangular_wishart_kernel(n):
+    """The kernel that forms W from the triangles alone: the same W as numpy's two dense
+    products to rounding, its plain twin to the bit, and exactly symmetric (sizes around
+    the padding to eight columns and the groups of four rows)."""
+    from simulate import _kernels as K
+
+    t = 60
     mu, cov = recipe_a(n)
-    g = NormalGenerator(mu, cov)
-    rng = np.random.default_rng(11)
-    chi = rng.chisquare(np.arange(t - 1, t - 1 - n, -1.0), size=(7, n))
-    low = rng.standard_normal((7, n * (n - 1) // 2))
+    rng = np.random.default_rng(11 + n)
+    d = 3
+    chi = rng.chisquare(np.arange(t - 1, t - 1 - n, -1.0), size=(d, n))
+    low = rng.standard_normal((d, n * (n - 1) // 2))
     chol = np.linalg.cholesky(cov)
-    fast = K.wishart_blocked(chol, chi, low, np.empty((7, n, n)))
-    twin = K.wishart_blocked_py(chol, chi, low, np.empty((7, n, n)))
-    a = K.bartlett_factors(chi, low, np.empty((7, n, n)))
-    dense = np.matmul(chol, a)
-    dense = np.matmul(dense, dense.transpose(0, 2, 1))
+    fast = K.wishart_triangular(chol, chi, low, np.full((d, n, n), np.nan))
+    twin = K.wishart_triangular_py(chol, chi, low, np.full((d, n, n), np.nan))
+    dense = _dense_wishart(chol, chi, low)
     assert np.array_equal(fast.view(np.int64), twin.view(np.int64))
     np.testing.assert_array_equal(fast, fast.transpose(0, 2, 1))
     np.testing.assert_allclose(fast, dense, rtol=1e-12, atol=1e-15 * np.abs(dense).max())
+
+
+def test_wishart_moments_at_40_assets():
+    """At 40 assets the drawn scatter has the Wishart moments (E[S] = Sigma; Var(S_ij) =
+    (S_ii S_jj + S_ij^2) / (T - 1), a standard Wishart moment; scipy.stats.wishart's
+    variance as a second reference)."""
+    n, t = 40, 60
+    mu, cov = recipe_a(n)
+    g = NormalGenerator(mu, cov)
     draws = 6_000
     s = g.draw_moments(np.random.default_rng(12), draws, t).scatter / (t - 1)
     var_theory = (np.outer(np.diag(cov), np.diag(cov)) + cov ** 2) / (t - 1)
     z = (s.mean(axis=0) - cov) / np.sqrt(var_theory / draws)
-    assert np.abs(z).max() < 5.0                      # 1,640 distinct entries
+    assert np.abs(z).max() < 5.0                      # 820 distinct entries
     np.testing.assert_allclose(s.var(axis=0, ddof=1).diagonal(), var_theory.diagonal(),
                                rtol=0.15)
     w = stats.wishart(df=t - 1, scale=cov)
