@@ -516,3 +516,97 @@ def test_separable_start_is_the_separable_minimiser():
     K.separable_start_rows(H, c, np.zeros(3), np.ones(3), out, done)
     assert done.tolist() == [True, False, False]
     assert np.all(out[1:] == -7.0)
+
+
+def _cold_solve(fn_core, H, c, A, lo, hi, lb, ub, x0, maxiter=500, pdas=False):
+    """One problem from the cold point: the primal active-set core, or the primal-dual
+    phase (returns None when it did not settle)."""
+    n, m = H.shape[0], A.shape[0]
+    work_f, work_i = K.make_work(n, m)
+    x = x0.copy()
+    vs, rs = np.zeros(n, np.int64), np.zeros(m, np.int64)
+    K._states(x, A, lo, hi, lb, ub, vs, rs)
+    z, nu = np.zeros(n), np.zeros(m)
+    if pdas:
+        rs[:] = -1
+        st_, _ = K._pdas(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, K._PDAS_MAXIT,
+                         K._unpack(work_f, work_i, n, m), np.zeros(n))
+        return None if st_ != K.OK else (x, z, nu)
+    st_, _ = fn_core(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i,
+                     0.0, np.zeros(n))
+    assert st_ == K.OK
+    return x, z, nu
+
+
+@pytest.mark.parametrize("long_only", [True, False])
+def test_primal_dual_phase_ends_where_the_primal_method_ends(long_only):
+    """Bounds and equality rows only (fully invested, long-only or boxed long-short): the
+    primal-dual active-set phase (Hintermueller, Ito & Kunisch 2003) settles on the
+    primal method's final working set, so weights and multipliers are the same to the
+    bit, and the batch kernel (which runs the phase first) returns them too."""
+    rng = np.random.default_rng(21 if long_only else 22)
+    n, D = 30, 60
+    assets = tuple(f"x{i}" for i in range(n))
+    params = {"long_only": long_only, "risk_aversion": 3.0}
+    if not long_only:
+        params["bounds"] = {a: [-0.3, 0.5] for a in assets}
+    r = make_rule("r", "mean-variance", params, assets)
+    means, covs = draws(rng, D, n)
+    H, c, A, lo, hi, lb, ub = r._qp_problem(means, covs)
+    H = np.ascontiguousarray(H)
+    A, lo, hi = (np.ascontiguousarray(a) for a in (A, lo, hi))
+    x0 = r._starts(means, covs, H, c, A, lo, hi, lb, ub, False)
+    settled = 0
+    for d in range(D):
+        prim = _cold_solve(K._qp_core, H[d], c[d], A[d], lo[d], hi[d], lb, ub, x0[d])
+        pd = _cold_solve(None, H[d], c[d], A[d], lo[d], hi[d], lb, ub, x0[d], pdas=True)
+        if pd is None:
+            continue
+        settled += 1
+        for a, b in zip(prim, pd):
+            assert np.array_equal(a.view(np.int64), b.view(np.int64))
+    assert settled >= 0.9 * D
+    X, Z, NU, status = _run_qp(H, c, A, lo, hi, lb, ub, x0, warm=False)
+    assert np.all(status == K.OK)
+    kkt = _kkt_batch(H, c, A, lo, hi, lb, ub, X, Z, NU)
+    assert np.all(kkt <= 1e-9)
+    for d in range(0, D, 7):
+        x = _cold_solve(K._qp_core, H[d], c[d], A[d], lo[d], hi[d], lb, ub, x0[d])[0]
+        assert np.array_equal(X[d].view(np.int64), x.view(np.int64))
+
+
+def test_primal_dual_phase_twin_and_give_up():
+    """The phase's numba kernel against its plain twin (to rounding), and its give-up path:
+    with one subproblem allowed it stops unsettled on a problem that needs more, and the
+    batch kernel still solves that problem (the primal method takes over)."""
+    twin = K.plain_twin()
+    rng = np.random.default_rng(23)
+    n, D = 12, 10
+    assets = tuple(f"x{i}" for i in range(n))
+    r = make_rule("r", "mean-variance", {"risk_aversion": 2.0}, assets)
+    means, covs = draws(rng, D, n)
+    H, c, A, lo, hi, lb, ub = r._qp_problem(means, covs)
+    H = np.ascontiguousarray(H)
+    A, lo, hi = (np.ascontiguousarray(a) for a in (A, lo, hi))
+    x0 = r._starts(means, covs, H, c, A, lo, hi, lb, ub, False)
+    outs = []
+    for fn in (K.qp_batch, twin["qp_batch"]):
+        X, Z, NU = np.empty((D, n)), np.empty((D, n)), np.empty((D, 1))
+        s, it = np.empty(D, np.int64), np.empty(D, np.int64)
+        fn(H, c, A, lo, hi, lb, ub, x0, False, -1, 500, X, Z, NU, s, it)
+        outs.append((X, Z, NU, s, it))
+    for a, b in zip(outs[0], outs[1]):
+        np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-15)
+    gave_up = 0
+    for d in range(D):
+        work_f, work_i = K.make_work(n, 1)
+        x = x0[d].copy()
+        vs, rs = np.zeros(n, np.int64), np.full(1, -1, np.int64)
+        K._states(x, A[d], lo[d], hi[d], lb, ub, vs, rs)
+        rs[:] = -1
+        st_, it_ = K._pdas(H[d], c[d], A[d], lo[d], hi[d], lb, ub, x, vs, rs, np.zeros(n),
+                           np.zeros(1), 1, K._unpack(work_f, work_i, n, 1), np.zeros(n))
+        if st_ == K.NOT_SETTLED:
+            gave_up += 1
+            assert outs[0][3][d] == K.OK and outs[0][4][d] > 1   # solved all the same
+    assert gave_up > 0
