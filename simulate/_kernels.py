@@ -147,11 +147,15 @@ def wishart_triangular_py(chol, chi, low, out):
     bt = np.zeros(p * w8)                     # rows of (L A)'
     av = np.zeros(p)                          # column j of A (rows k >= j), zeros past N
     w = np.zeros(n * w8)                      # lower triangle of W, padded rows
+    nl = n * (n - 1) // 2
+    ld = np.empty(max(nl, 1))                 # this draw's normals, read in order once
     for d in range(d_count):
+        for q in range(nl):
+            ld[q] = low[d, q]
         for j in range(n):
             av[j] = np.sqrt(chi[d, j])
             for k in range(j + 1, n):
-                av[k] = low[d, k * (k - 1) // 2 + j]
+                av[k] = ld[k * (k - 1) // 2 + j]
             jo = j * w8
             for c in range(w8):
                 bt[jo + c] = 0.0
@@ -167,7 +171,6 @@ def wishart_triangular_py(chol, chi, low, out):
                 for c in range((k // 8) * 8, w8):
                     bt[np.uint64(jo + c)] += (a0 * lt[np.uint64(o0 + c)] + a1 * lt[np.uint64(o1 + c)]
                                               + a2 * lt[np.uint64(o2 + c)] + a3 * lt[np.uint64(o3 + c)])
-        o = out[d]
         for i in range(n):
             io = i * w8
             ce = (i + 8) // 8 * 8                 # columns 0..i, padded
@@ -185,10 +188,15 @@ def wishart_triangular_py(chol, chi, low, out):
                 for c in range((k // 8) * 8, ce):
                     w[np.uint64(io + c)] += (b0 * bt[np.uint64(o0 + c)] + b1 * bt[np.uint64(o1 + c)]
                                              + b2 * bt[np.uint64(o2 + c)] + b3 * bt[np.uint64(o3 + c)])
+        # written row by row (the upper half read from the lower rows of w, which are in
+        # cache), so that the output, which is not, is written in order
+        o = out[d]
+        for i in range(n):
+            io = i * w8
             for c in range(i + 1):
-                v = w[io + c]
-                o[i, c] = v
-                o[c, i] = v
+                o[i, c] = w[io + c]
+            for c in range(i + 1, n):
+                o[i, c] = w[c * w8 + i]
     return out
 
 
