@@ -8,13 +8,22 @@ and keeps its traceback.
 """
 from __future__ import annotations
 
-import argparse
-import sys
-from typing import Optional, Sequence
+import os
 
-from estimators.core import NoiseproofError
+# Before numpy loads OpenBLAS: one BLAS thread per process. The engine's parallelism is
+# its worker processes, and every block is computed with one BLAS thread anyway (so that
+# its numbers cannot depend on where it ran); OpenBLAS's own helper threads would only
+# busy-wait beside the workers (about 0.1 s each time a process sets its thread count).
+# A value the user set is kept.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
-from .commands import COMMANDS
+import argparse  # noqa: E402
+import sys  # noqa: E402
+from typing import Optional, Sequence  # noqa: E402
+
+from estimators.core import NoiseproofError  # noqa: E402
+
+from .commands import COMMANDS  # noqa: E402
 
 DESCRIPTION = (
     "Evidence that an optimised portfolio allocation is not an artefact of noisy inputs: "

@@ -83,12 +83,15 @@ def _worker_init() -> None:
         numba.set_num_threads(1)
     except Exception:  # pragma: no cover - numba missing or already running threads
         pass
+    # one BLAS thread: a no-op when the worker inherited one (the command line sets
+    # OPENBLAS_NUM_THREADS=1 before numpy loads); setting it anyway would restart
+    # OpenBLAS's helper threads, which busy-wait for about 0.1 s
     try:
-        from threadpoolctl import threadpool_limits
-
-        threadpool_limits(1)
-    except Exception:  # pragma: no cover - optional
+        from simulate import pin_one_blas_thread
+    except ImportError:  # pragma: no cover - a custom engine without the simulate package
         pass
+    else:
+        pin_one_blas_thread()
     _retain_freed_memory()
 
 

@@ -21,6 +21,7 @@ on the block size, the number of workers or the order in which blocks finish.
 """
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import io
 import json
@@ -918,14 +919,44 @@ def run_block(spec: ResampleSpec, block_index: int) -> BlockResult:
         return _run_block(spec, block_index)
 
 
-def _one_blas_thread():
-    """Context manager: BLAS limited to one thread (the controller is built once)."""
+def _blas_controller():
+    """threadpoolctl's controller of this process's thread pools (built once)."""
     global _BLAS_CONTROLLER
     if _BLAS_CONTROLLER is None:
         from threadpoolctl import ThreadpoolController
 
         _BLAS_CONTROLLER = ThreadpoolController()
-    return _BLAS_CONTROLLER.limit(limits=1, user_api="blas")
+    return _BLAS_CONTROLLER
+
+
+def _blas_is_single_threaded() -> bool:
+    """Whether every BLAS library of this process already runs one thread."""
+    return all(c.num_threads == 1 for c in _blas_controller().lib_controllers
+               if c.user_api == "blas")
+
+
+def _one_blas_thread():
+    """Context manager: BLAS limited to one thread.
+
+    A no-op when BLAS already runs one thread. Setting the limit anyway is not free: in a
+    process forked from one that used OpenBLAS (the fork stops OpenBLAS's helper threads),
+    setting the thread count restarts the helpers, which then busy-wait for about 0.1 s
+    before they sleep. Measured on the benchmark machine: a worker's first block took
+    95-140 ms instead of 25-35 ms, on both processes, because of those spinning threads.
+    """
+    if _blas_is_single_threaded():
+        return contextlib.nullcontext()
+    return _blas_controller().limit(limits=1, user_api="blas")
+
+
+def pin_one_blas_thread() -> None:
+    """Limit BLAS to one thread for the rest of this process (worker processes: the
+    workers are the parallelism); nothing to do, and nothing done, when it already runs
+    one (see :func:`_one_blas_thread`)."""
+    if not _blas_is_single_threaded():
+        from threadpoolctl import threadpool_limits
+
+        threadpool_limits(1, user_api="blas")
 
 
 #: threadpoolctl's view of this process's thread pools (built on first use).
@@ -1417,11 +1448,7 @@ def _worker_init(spec=None):  # pragma: no cover - runs in worker processes
     global _WORKER_SPEC
     _WORKER_SPEC = spec
     retain_freed_memory()
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:
-        return
-    threadpool_limits(1)
+    pin_one_blas_thread()      # inherited from the parent (see run_resampling): no-op
 
 
 def _run_block_worker(index):  # pragma: no cover - runs in worker processes
@@ -1463,8 +1490,11 @@ def run_resampling(spec: ResampleSpec, *, workers: int = 1,
     done = {}
     nxt = 0
     window = 3 * workers
-    with cf.ProcessPoolExecutor(max_workers=workers, mp_context=ctx,
-                                initializer=_worker_init, initargs=(spec,)) as pool:
+    # the workers are forked with BLAS at one thread already, so that they need not set it
+    # (which would start OpenBLAS's spinning helper threads; see _one_blas_thread)
+    with _one_blas_thread(), cf.ProcessPoolExecutor(max_workers=workers, mp_context=ctx,
+                                                    initializer=_worker_init,
+                                                    initargs=(spec,)) as pool:
         it = iter(plan)
         for b in it:
             pending[pool.submit(_run_block_worker, b.index)] = b
