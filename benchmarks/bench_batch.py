@@ -10,7 +10,8 @@ no pack: the executors are what is measured). It runs
 * on a 2-worker local Dask cluster of separate processes (``--dask-local 2``);
 
 checks that the three give identical numbers, and prints wall times, speed-ups and
-scaling efficiency. It also measures the scheduling overhead per block: the same batch
+scaling efficiency. Like the command line, it runs with one OpenBLAS thread per process
+(``OPENBLAS_NUM_THREADS=1`` for the processes it starts). It also measures the scheduling overhead per block: the same batch
 machinery (durable block writes included) driving blocks that compute nothing, with 1
 and with K blocks per task (``--blocks-per-task``, the option that shrinks it).
 
@@ -234,6 +235,13 @@ def main(argv=None) -> int:
     studies = args.studies or (6 if args.quick else 24)
     draws = args.draws or (500 if args.quick else 2000)
 
+    # configured as the command line configures its processes (noiseproof/cli.py): one
+    # OpenBLAS thread here and in every worker process started from here (the fork server
+    # and the Dask cluster's workers inherit the variable and load numpy with it)
+    os.environ["OPENBLAS_NUM_THREADS"] = "1"
+    from simulate import pin_one_blas_thread
+
+    pin_one_blas_thread()
     work = Path(tempfile.mkdtemp(prefix="noiseproof-bench-batch-"))
     load_before = os.getloadavg()
     try:
