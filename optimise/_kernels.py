@@ -1298,9 +1298,9 @@ def separable_start_rows(H, c, lower, cap, out, done):
     For each draw, ``min sum_i (h_i / 2 w_i^2 - c_i w_i)`` subject to ``sum w = 1`` and
     ``lower <= w <= cap``, with ``h_i = H[d, i, i]``: the full problem with the
     covariances between assets dropped. Its solution is ``w_i = clip((c_i - lam) / h_i)``
-    with the one ``lam`` at which the weights sum to 1 (a water level): bisection on the
-    non-increasing sum narrows ``lam`` to a relative 1e-9, then the level is solved
-    exactly from the assets left free there. Its support is usually close to the full
+    with the one ``lam`` at which the weights sum to 1 (a water level): Newton steps on the
+    non-increasing, piecewise linear sum (safeguarded by bisection) find the piece of the
+    root, then the level is solved exactly from the assets free there. Its support is usually close to the full
     problem's, so the active-set method starts a few changes away from the optimum (at
     N = 50 about 5 iterations instead of 9 from the best-asset vertex). Any feasible point
     is a valid start; this one only saves iterations. Rows with a non-positive or
@@ -1343,19 +1343,37 @@ def separable_start_rows(H, c, lower, cap, out, done):
         if not ok:
             continue
         scale = abs(lam_lo) + abs(lam_hi)
+        # the sum is piecewise linear in the level: Newton steps (exact on the root's
+        # piece), kept inside the bracket by bisection, which narrows it to a relative 1e-9
+        mid = 0.5 * (lam_lo + lam_hi)
         for _ in range(64):                    # sum(lam_lo) >= 1 >= sum(lam_hi)
-            if lam_hi - lam_lo <= 1e-9 * scale:
-                break
-            mid = 0.5 * (lam_lo + lam_hi)
             tot = 0.0
+            slope = 0.0
             for i in range(n):
-                tot += min(max(ch[i] - mid * ih[i], lower[i]), cap[i])
+                v = ch[i] - mid * ih[i]
+                if v <= lower[i]:
+                    tot += lower[i]
+                elif v >= cap[i]:
+                    tot += cap[i]
+                else:
+                    tot += v
+                    slope += ih[i]
             if tot > 1.0:
                 lam_lo = mid
             else:
                 lam_hi = mid
-        # exact level for the assets free at the bracket's midpoint
-        mid = 0.5 * (lam_lo + lam_hi)
+            if lam_hi - lam_lo <= 1e-9 * scale:
+                break
+            if slope > 0.0:
+                nxt = mid + (tot - 1.0) / slope
+                if nxt == mid:
+                    break                      # on the root's piece: the level is exact
+                if not lam_lo < nxt < lam_hi:
+                    nxt = 0.5 * (lam_lo + lam_hi)
+            else:                              # no asset free here: bisect
+                nxt = 0.5 * (lam_lo + lam_hi)
+            mid = nxt
+        # exact level for the assets free at the last point
         num = -1.0
         den = 0.0
         for i in range(n):

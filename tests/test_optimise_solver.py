@@ -475,11 +475,15 @@ def test_separable_start_is_the_separable_minimiser():
     rng = np.random.default_rng(2026)
     for n, lower, upper in [(10, np.zeros(10), np.ones(10)),
                             (25, np.zeros(25), np.full(25, 0.12)),
-                            (8, np.full(8, 0.02), np.linspace(0.1, 0.6, 8))]:
+                            (8, np.full(8, 0.02), np.linspace(0.1, 0.6, 8)),
+                            # tight caps, widely spread levels: bracket points where no
+                            # weight is free (every weight at a bound)
+                            (12, np.zeros(12), np.full(12, 0.1)),
+                            (30, np.zeros(30), np.full(30, 0.04))]:
         D = 12
         a = rng.normal(size=(D, n, n))
         H = a @ a.transpose(0, 2, 1) / n + 0.05 * np.eye(n)
-        c = rng.normal(0.0, 0.5, size=(D, n))
+        c = rng.normal(0.0, 0.5 if n not in (12, 30) else 5.0, size=(D, n))
         cap = np.minimum(upper, lower + 1.0 - lower.sum())
         out = np.full((D, n), np.nan)
         done = np.zeros(D, dtype=bool)
@@ -506,7 +510,8 @@ def test_separable_start_is_the_separable_minimiser():
                 assert top_low <= level[at_cap].min(initial=np.inf) + 1e-9
             x = cp.Variable(n)
             cp.Problem(cp.Minimize(0.5 * cp.sum(cp.multiply(h, cp.square(x))) - c[d] @ x),
-                       [cp.sum(x) == 1, x >= lower, x <= cap]).solve()
+                       [cp.sum(x) == 1, x >= lower, x <= cap]).solve(
+                solver=cp.CLARABEL, tol_gap_abs=1e-11, tol_gap_rel=1e-11, tol_feas=1e-11)
             np.testing.assert_allclose(w, x.value, atol=1e-6)
     # a draw with a zero variance or a non-finite mean is left to the caller's start
     H = np.stack([np.eye(3), np.diag([1.0, 0.0, 1.0]), np.eye(3)])
