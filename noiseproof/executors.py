@@ -263,10 +263,24 @@ class DaskExecutor:
             import dask
 
             env = {name: "1" for name in _THREAD_VARIABLES}
+            # this cluster's workers are ours, like local worker processes: the C allocator
+            # keeps freed memory for reuse (see simulate.retain_freed_memory; Dask's own
+            # default trims at 64 KiB, so every chunk's arrays would come back as fresh
+            # pages). Read by glibc when a process starts, hence set before the nannies
+            # spawn their workers (restarted workers get it too); values in the
+            # environment win, as Dask arranges
+            spawn_env = dict(dask.config.get("distributed.nanny.pre-spawn-environ") or {})
+            spawn_env.update({name: 1 for name in _THREAD_VARIABLES})
+            try:
+                from simulate.engine import MALLOC_SETTINGS
+            except ImportError:  # pragma: no cover - a custom engine without simulate
+                MALLOC_SETTINGS = {}
+            spawn_env.update(MALLOC_SETTINGS)
             # the workers' sampling profiler and GIL monitor cost compute time in every
             # task (the worker's threads interrupt the one computing); a batch needs neither
             with dask.config.set({"distributed.worker.profile.enabled": False,
-                                  "distributed.admin.system-monitor.gil.enabled": False}):
+                                  "distributed.admin.system-monitor.gil.enabled": False,
+                                  "distributed.nanny.pre-spawn-environ": spawn_env}):
                 self._cluster = distributed.LocalCluster(
                     n_workers=n, threads_per_worker=1, processes=True, dashboard_address=":0",
                     silence_logs=logging.ERROR, env=env)

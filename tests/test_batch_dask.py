@@ -111,3 +111,32 @@ def test_cli_dask_local_starts_and_stops_its_own_cluster(plan_dir, tmp_path, cap
     run_batch(batch.load_plan(plan_dir / "plan.toml"), tmp_path / "one", engine=STANDIN,
               quiet=True)
     assert _summaries(tmp_path / "out") == _summaries(tmp_path / "one")
+
+
+def _worker_settings():
+    import os
+
+    from threadpoolctl import threadpool_info
+
+    return ({k: os.environ.get(k) for k in ("MALLOC_MMAP_THRESHOLD_", "MALLOC_TRIM_THRESHOLD_",
+                                            "OPENBLAS_NUM_THREADS")},
+            max(i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"))
+
+
+def test_local_cluster_workers_run_like_local_worker_processes(monkeypatch):
+    """A cluster started for the batch (``--dask-local``) is ours: its workers start with
+    one BLAS thread and with the allocator settings of simulate.retain_freed_memory, as
+    environment variables glibc reads at a process's start (Dask's own default trims freed
+    memory at 64 KiB)."""
+    from simulate.engine import MALLOC_SETTINGS
+
+    for name in MALLOC_SETTINGS:
+        monkeypatch.delenv(name, raising=False)
+    ex = DaskExecutor(local_workers=1)
+    try:
+        (env, threads), = ex.client.run(_worker_settings).values()
+    finally:
+        ex.close()
+    assert env == {"MALLOC_MMAP_THRESHOLD_": str(32 << 20),
+                   "MALLOC_TRIM_THRESHOLD_": str(1 << 30), "OPENBLAS_NUM_THREADS": "1"}
+    assert threads == 1

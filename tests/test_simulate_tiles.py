@@ -84,9 +84,17 @@ def test_automatic_blocks_are_whole_chunks_sized_by_the_work():
     costly = _rich_spec(n=60, draws=8_000, sweep_lengths=(), self_check_draws=0)
     sizes = [b.stop - b.start for b in block_plan(costly)]
     assert costly.block_draws == 500 and sum(sizes) == 8_000
-    # 14 full blocks, then the last 1,000 draws halve towards the end: 500, 250, 125, 125
-    assert sizes == [500] * 14 + [500, 250, 125, 125]
+    # the frontier draws (the first 60: one chunk, some 1.7 s of modelled work at N = 60) in
+    # a block of their own; then full blocks, and the last 750 draws halve towards the end
+    assert sizes == [125] + [500] * 15 + [250, 125]
     assert all(s % CHUNK_DRAWS == 0 for s in sizes)
+    # more frontier draws: blocks of about BLOCK_SECONDS of modelled work (one chunk here)
+    sizes = [b.stop - b.start for b in block_plan(replace(costly, frontier_draws=1000))]
+    assert sizes[:9] == [125] * 8 + [500] and sum(sizes) == 8_000
+    # at 4 assets a frontier draw is cheaper: two chunks per block
+    cheap = _rich_spec(n=4, draws=2_000, sweep_lengths=(), self_check_draws=0,
+                       frontier_draws=1000)
+    assert [b.stop - b.start for b in block_plan(cheap)] == [250] * 4 + [1000]
     # an explicit size is taken as it is: no taper
     assert [b.stop - b.start for b in block_plan(replace(costly, block_size=500))] == [500] * 16
     # a small, cheap study is not cut into blocks of a few milliseconds
