@@ -354,6 +354,30 @@ def qp_solve(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i)
     return SINGULAR, it
 
 
+def _gradient(H, c, A, x, nu, ridx, nr, delta, xk, g):
+    """``g = H x - c + delta (x - xk) + A_R' nu_R`` over the ``nr`` working rows ``ridx``.
+
+    H is symmetric, so ``H x`` is the sum over the non-zero ``x_j`` of ``x_j H[j, :]``
+    (rows are contiguous); long-only solutions are sparse, which makes this O(N nnz)
+    rather than O(N^2).
+    """
+    n = H.shape[0]
+    for i in range(n):
+        g[i] = -c[i]
+        if delta != 0.0:
+            g[i] += delta * (x[i] - xk[i])
+    for j in range(n):
+        xj = x[j]
+        if xj != 0.0:
+            for i in range(n):
+                g[i] += H[j, i] * xj
+    for r in range(nr):
+        k = ridx[r]
+        nk = nu[k]
+        for i in range(n):
+            g[i] += A[k, i] * nk
+
+
 def _qp_core(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i, delta, xk):
     """The active-set iterations for ``1/2 x'Hx - c'x + delta/2 |x - xk|^2``.
 
@@ -467,23 +491,8 @@ def _qp_core(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i,
             else:
                 rs[block - n] = bkind
             continue
-        # at the subproblem minimiser: gradient and multipliers. H is symmetric, so
-        # H x = sum over the non-zero x_j of x_j H[j, :] (rows are contiguous); long-only
-        # solutions are sparse, which makes this O(N nnz) rather than O(N^2).
-        for i in range(n):
-            g[i] = -c[i]
-            if delta != 0.0:
-                g[i] += delta * (x[i] - xk[i])
-        for j in range(n):
-            xj = x[j]
-            if xj != 0.0:
-                for i in range(n):
-                    g[i] += H[j, i] * xj
-        for r in range(nr):
-            k = ridx[r]
-            nk = nu[k]
-            for i in range(n):
-                g[i] += A[k, i] * nk
+        # at the subproblem minimiser: gradient and multipliers
+        _gradient(H, c, A, x, nu, ridx, nr, delta, xk, g)
         worst = dtol
         wi = -1
         for i in range(n):
@@ -644,19 +653,7 @@ def _pdas(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxit, work, xk):
             return NOT_SETTLED, it
         for a in range(nf):
             x[idx[a]] = xs[a]
-        # gradient H x - c + A' nu (H symmetric: rows of the non-zero x_j)
-        for i in range(n):
-            g[i] = -c[i]
-        for j in range(n):
-            xj = x[j]
-            if xj != 0.0:
-                for i in range(n):
-                    g[i] += H[j, i] * xj
-        for r in range(nr):
-            k = ridx[r]
-            nk = nu[k]
-            for i in range(n):
-                g[i] += A[k, i] * nk
+        _gradient(H, c, A, x, nu, ridx, nr, 0.0, xk, g)
         moved = False
         for i in range(n):
             if vs[i] == 0:
@@ -1410,6 +1407,7 @@ _chol_subset = _compile(_chol_subset)
 _chol_solve = _compile(_chol_solve)
 _chol_solve_col = _compile(_chol_solve_col)
 _eqp = _compile(_eqp)
+_gradient = _compile(_gradient)
 _all_rows_equal = _compile(_all_rows_equal)
 _pdas = _compile(_pdas)
 _unpack = _compile(_unpack)
