@@ -1279,7 +1279,7 @@ def run_batch(plan: Plan, out, *, executor=None, engine: Optional[Engine] = None
     blocks_per_task : int, optional
         Blocks grouped into one task (fewer, larger tasks: less scheduler overhead per
         block, coarser durable progress). Results do not depend on it. Default: the
-        executor's ``blocks_per_task`` (1 locally, 4 on Dask).
+        executor's ``blocks_per_task`` (1).
     argv : list of str, optional
         The command line, recorded in each study's manifest.
     max_attempts : int

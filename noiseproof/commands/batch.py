@@ -40,8 +40,8 @@ def register(sub) -> None:
                        help="start a local Dask cluster of N single-threaded worker processes")
     where.add_argument("--blocks-per-task", type=int, metavar="K", default=None,
                        help="send K consecutive blocks per task: less scheduler overhead per "
-                            "block, coarser durable progress; results unchanged (default 1 "
-                            "on local workers, 4 on Dask)")
+                            "block, coarser durable progress, worse balance; results unchanged "
+                            "(default 1)")
     p.add_argument("--resume", action="store_true",
                    help="continue the batch in --out: skip finished studies and blocks, "
                         "recompute corrupt blocks, take over a stale lock")
