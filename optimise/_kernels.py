@@ -1289,6 +1289,32 @@ def greedy_fill_rows(score, lower, cap, left0, out):
             left = left - add
 
 
+def _level_terms(ch, ih, lower, cap, lam):
+    """At water level ``lam`` (see :func:`separable_start_rows`): the sum of the weights
+    ``clip(ch_i - lam ih_i, lower_i, cap_i)``, its slope ``-sum`` over the free weights of
+    ``ih_i`` (returned positive), and the two sums that give the exact level for the free
+    weights there: ``num = sum(bound weights) + sum_free ch_i - 1`` and ``den = sum_free ih_i``.
+    """
+    tot = 0.0
+    slope = 0.0
+    num = -1.0
+    den = 0.0
+    for i in range(ch.shape[0]):
+        v = ch[i] - lam * ih[i]
+        if v <= lower[i]:
+            tot += lower[i]
+            num += lower[i]
+        elif v >= cap[i]:
+            tot += cap[i]
+            num += cap[i]
+        else:
+            tot += v
+            slope += ih[i]
+            num += ch[i]
+            den += ih[i]
+    return tot, slope, num, den
+
+
 def separable_start_rows(H, c, lower, cap, out, done):
     """Start points of batched long-only QPs: the minimiser of the separable problem.
 
@@ -1344,17 +1370,7 @@ def separable_start_rows(H, c, lower, cap, out, done):
         # piece), kept inside the bracket by bisection, which narrows it to a relative 1e-9
         mid = 0.5 * (lam_lo + lam_hi)
         for _ in range(64):                    # sum(lam_lo) >= 1 >= sum(lam_hi)
-            tot = 0.0
-            slope = 0.0
-            for i in range(n):
-                v = ch[i] - mid * ih[i]
-                if v <= lower[i]:
-                    tot += lower[i]
-                elif v >= cap[i]:
-                    tot += cap[i]
-                else:
-                    tot += v
-                    slope += ih[i]
+            tot, slope, _, _ = _level_terms(ch, ih, lower, cap, mid)
             if tot > 1.0:
                 lam_lo = mid
             else:
@@ -1371,17 +1387,7 @@ def separable_start_rows(H, c, lower, cap, out, done):
                 nxt = 0.5 * (lam_lo + lam_hi)
             mid = nxt
         # exact level for the assets free at the last point
-        num = -1.0
-        den = 0.0
-        for i in range(n):
-            v = ch[i] - mid * ih[i]
-            if v <= lower[i]:
-                num += lower[i]
-            elif v >= cap[i]:
-                num += cap[i]
-            else:
-                num += ch[i]
-                den += ih[i]
+        _, _, num, den = _level_terms(ch, ih, lower, cap, mid)
         lam = num / den if den > 0.0 else mid
         tot = 0.0
         for i in range(n):
@@ -1427,6 +1433,7 @@ cov_checks = _compile(cov_checks)
 kkt_batch = _compile(kkt_batch)
 path_slopes = _compile(path_slopes)
 greedy_fill_rows = _compile(greedy_fill_rows)
+_level_terms = _compile(_level_terms)
 separable_start_rows = _compile(separable_start_rows)
 
 
