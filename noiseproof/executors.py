@@ -266,13 +266,14 @@ class DaskExecutor:
 
             import dask
 
+            # one thread per numerical library in each worker, whatever the environment says
             env = {name: "1" for name in _THREAD_VARIABLES}
             # this cluster's workers are ours, like local worker processes: the C allocator
             # keeps freed memory for reuse (see simulate.retain_freed_memory; Dask's own
             # default trims at 64 KiB, so every chunk's arrays would come back as fresh
-            # pages). Read by glibc when a process starts, hence set before the nannies
-            # spawn their workers (restarted workers get it too); values in the
-            # environment win, as Dask arranges
+            # pages), and the thread counts again, for libraries loaded before the worker
+            # applies `env`. Read when a process starts (glibc) or loads the library, hence
+            # set before the nannies spawn their workers (restarted workers get them too)
             spawn_env = dict(dask.config.get("distributed.nanny.pre-spawn-environ") or {})
             spawn_env.update({name: 1 for name in _THREAD_VARIABLES})
             try:

@@ -354,6 +354,22 @@ def qp_solve(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i)
     return SINGULAR, it
 
 
+def _scales(H, c):
+    """(hscale, gscale): the largest diagonal entry of ``H`` (1 when none is positive),
+    and the larger of it and the largest ``|c_i|``; the solvers' tolerances scale with them."""
+    hscale = 0.0
+    for i in range(H.shape[0]):
+        if H[i, i] > hscale:
+            hscale = H[i, i]
+    if hscale <= 0.0:
+        hscale = 1.0
+    gscale = 0.0
+    for i in range(c.shape[0]):
+        if abs(c[i]) > gscale:
+            gscale = abs(c[i])
+    return hscale, max(gscale, hscale)
+
+
 def _gradient(H, c, A, x, nu, ridx, nr, delta, xk, g):
     """``g = H x - c + delta (x - xk) + A_R' nu_R`` over the ``nr`` working rows ``ridx``.
 
@@ -386,17 +402,7 @@ def _qp_core(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i,
     n = H.shape[0]
     m = A.shape[0]
     L, V, S, LS, u, t, xs, g, r1, r2, idx, ridx = _unpack(work_f, work_i, n, m)
-    hscale = 0.0
-    for i in range(n):
-        if H[i, i] > hscale:
-            hscale = H[i, i]
-    if hscale <= 0.0:
-        hscale = 1.0
-    gscale = 0.0
-    for i in range(n):
-        if abs(c[i]) > gscale:
-            gscale = abs(c[i])
-    gscale = max(gscale, hscale)
+    hscale, gscale = _scales(H, c)
     dtol = 1e-11 * gscale
     for k in range(m):
         if lo[k] == hi[k]:
@@ -629,16 +635,8 @@ def _pdas(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxit, work, xk):
     """
     n = H.shape[0]
     L, V, S, LS, u, t, xs, g, r1, r2, idx, ridx = work
-    hscale = 0.0
-    gscale = 0.0
-    for i in range(n):
-        if H[i, i] > hscale:
-            hscale = H[i, i]
-        if abs(c[i]) > gscale:
-            gscale = abs(c[i])
-    if hscale <= 0.0:
-        hscale = 1.0
-    dtol = 1e-11 * max(gscale, hscale)
+    hscale, gscale = _scales(H, c)
+    dtol = 1e-11 * gscale                      # the primal method's stopping tolerance
     it = 0
     while it < maxit:
         it += 1
@@ -1323,8 +1321,9 @@ def separable_start_rows(H, c, lower, cap, out, done):
     covariances between assets dropped. Its solution is ``w_i = clip((c_i - lam) / h_i)``
     with the one ``lam`` at which the weights sum to 1 (a water level): Newton steps on the
     non-increasing, piecewise linear sum (safeguarded by bisection) find the piece of the
-    root, then the level is solved exactly from the assets free there. Its support is usually close to the full
-    problem's, so the active-set method starts a few changes away from the optimum (at
+    root, then the level is solved exactly from the assets free there. Its support is
+    usually close to the full problem's, so the active-set method starts a few changes
+    away from the optimum (at
     N = 50 about 5 iterations instead of 9 from the best-asset vertex). Any feasible point
     is a valid start; this one only saves iterations. Rows with a non-positive or
     non-finite ``h_i`` or a non-finite ``c_i`` are left as they are (the caller fills them
@@ -1413,6 +1412,7 @@ _chol_subset = _compile(_chol_subset)
 _chol_solve = _compile(_chol_solve)
 _chol_solve_col = _compile(_chol_solve_col)
 _eqp = _compile(_eqp)
+_scales = _compile(_scales)
 _gradient = _compile(_gradient)
 _all_rows_equal = _compile(_all_rows_equal)
 _pdas = _compile(_pdas)

@@ -501,7 +501,8 @@ def block_plan(spec: ResampleSpec) -> list:
 
     Main blocks first, then the sweep lengths in order, then the self-check. Blocks hold
     ``spec.block_draws`` draws; with the automatic size (``block_size = 0``) the main draws
-    that trace frontiers (the first ``frontier_draws``) go one chunk per block, and the last
+    that trace frontiers (the first ``frontier_draws``), when they hold more than a block's
+    modelled work, get smaller blocks of their own (:func:`_frontier_micros`), and the last
     blocks of a part that needs more than one block halve what is left (in whole chunks),
     so that the last blocks are short and the workers finish together.
     """
@@ -1073,8 +1074,8 @@ def tile_draws(spec: "ResampleSpec", length: int, path: str, part: str = "main")
     this many draws, drawn one after the other from the chunk's generator. The number is a
     function of the spec alone (assets, rows, path, estimators), never of the block size
     or the workers, so results do not depend on those; it does fix where the random stream
-    is cut and where the optimiser's warm starts restart, so changing it changes the
-    numbers (as a different seed would).
+    is cut (Student-t, moments path) and the shapes of the matrix products (their last
+    bits), so changing it changes the numbers (as a different seed would).
     """
     n = spec.n_assets
     if part == "check":

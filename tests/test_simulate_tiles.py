@@ -55,7 +55,7 @@ def test_small_tiles_change_no_digit_across_blocks_and_workers(monkeypatch):
 def test_tiles_draw_the_same_normal_histories_as_whole_chunks(monkeypatch):
     """The normal generator's stream is cut between tiles, not reordered: tiles of one draw
     and whole chunks see the same histories, so every statistic agrees to rounding (the
-    matrix products and the optimiser's warm starts differ in the last bits only)."""
+    shapes of the matrix products differ, hence the last bits only)."""
     base = replace(_rich_spec(), sweep_lengths=(), self_check_draws=0)
     whole = run_resampling(base).to_summary()["rules"]
     monkeypatch.setattr(engine, "TILE_BYTES", 1)
