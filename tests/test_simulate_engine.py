@@ -169,6 +169,25 @@ def test_completion_order_and_durable_blocks():
         merge_blocks(spec, [other] + again[1:])
 
 
+def test_block_results_pickle_with_sparse_counts():
+    """Between processes the weight histograms travel sparse; they arrive bit-identical,
+    with their dtype, and the pickle is far smaller than the dense arrays."""
+    import pickle
+
+    mu, cov = recipe_a(12)
+    spec = _spec(mu, cov, [LO_MV], draws=CHUNK_DRAWS, frontier_points=0)
+    r = run_block(spec, 0)
+    hist = r.counts["hist1"]
+    assert hist.size >= 4096 and np.count_nonzero(hist) < hist.size / 3   # the sparse case
+    data = pickle.dumps(r)
+    assert len(data) < hist.nbytes / 4
+    back = pickle.loads(data)
+    assert set(back.counts) == set(r.counts)
+    for k, v in r.counts.items():
+        assert back.counts[k].dtype == v.dtype and np.array_equal(back.counts[k], v), k
+    assert back.to_bytes() == r.to_bytes()      # every other field too
+
+
 def test_truncated_or_corrupt_block_bytes_are_detected():
     mu, cov = recipe_a(3)
     spec = _spec(mu, cov, [LO_MV], draws=50, frontier_points=0)
