@@ -16,6 +16,7 @@ from .engine import (  # noqa: F401
     ResampleSpec,
     RuleSpec,
     block_plan,
+    block_seconds,
     merge_blocks,
     pin_one_blas_thread,
     retain_freed_memory,
@@ -36,7 +37,7 @@ from .closed_form import kan_zhou, squared_sharpe  # noqa: F401
 
 __all__ = [
     "ResampleSpec", "RuleSpec", "ResampleResult", "run_resampling", "Block", "BlockResult",
-    "block_plan", "run_block", "merge_blocks", "score", "retain_freed_memory",
+    "block_plan", "block_seconds", "run_block", "merge_blocks", "score", "retain_freed_memory",
     "pin_one_blas_thread", "tile_draws", "auto_block_draws", "METRICS", "PERCENTILES",
     "GENERATORS", "make_generator", "population_moments", "fit_degrees_of_freedom",
     "optimal_block_length", "CHUNK_DRAWS", "kan_zhou", "squared_sharpe",

@@ -871,3 +871,25 @@ def test_blocks_of_changed_settings_are_reported_once(plan_dir, tmp_path):
     log = (out / "batch.log").read_text()
     assert log.count("6 block(s) were written for other settings") == 1
     assert "block 0 rejected" not in log
+
+
+def test_tasks_group_consecutive_cheap_blocks_up_to_the_modelled_budget():
+    from collections import deque
+
+    from noiseproof.batch import TASK_SECONDS, _next_task
+
+    costs = [0.6, 0.6, 0.05, 0.05, 0.2, 0.01, 0.01, 0.3, 0.01, 0.01]
+    todo = deque(range(len(costs)))
+    tasks = []
+    while todo:
+        tasks.append(_next_task(todo, 1, costs))
+    # an expensive block goes alone; cheap ones share a task while they fit the budget
+    assert tasks == [[0], [1], [2, 3], [4, 5, 6], [7], [8, 9]]
+    for t in tasks:
+        assert len(t) == 1 or sum(costs[i] for i in t) <= TASK_SECONDS
+    # only consecutive blocks share a task (a gap: blocks already on disk)
+    todo = deque([2, 3, 5, 6])
+    assert _next_task(todo, 1, costs) == [2, 3] and _next_task(todo, 1, costs) == [5, 6]
+    # without costs: a fixed number of consecutive blocks
+    todo = deque([0, 1, 2, 4, 5])
+    assert [_next_task(todo, 2, None) for _ in range(3)] == [[0, 1], [2], [4, 5]]

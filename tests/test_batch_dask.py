@@ -116,27 +116,37 @@ def test_cli_dask_local_starts_and_stops_its_own_cluster(plan_dir, tmp_path, cap
 def _worker_settings():
     import os
 
+    import dask
     from threadpoolctl import threadpool_info
+
+    from noiseproof.executors import LOCAL_CLUSTER_HOUSEKEEPING
 
     return ({k: os.environ.get(k) for k in ("MALLOC_MMAP_THRESHOLD_", "MALLOC_TRIM_THRESHOLD_",
                                             "OPENBLAS_NUM_THREADS")},
-            max(i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"))
+            max(i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"),
+            {k: dask.config.get(k) for k in LOCAL_CLUSTER_HOUSEKEEPING},
+            dask.config.get("distributed.worker.profile.enabled"))
 
 
 def test_local_cluster_workers_run_like_local_worker_processes(monkeypatch):
     """A cluster started for the batch (``--dask-local``) is ours: its workers start with
     one BLAS thread and with the allocator settings of simulate.retain_freed_memory, as
     environment variables glibc reads at a process's start (Dask's own default trims freed
-    memory at 64 KiB)."""
+    memory at 64 KiB); and with the quieter house-keeping and no sampling profiler."""
+    from noiseproof.executors import LOCAL_CLUSTER_HOUSEKEEPING
     from simulate.engine import MALLOC_SETTINGS
 
     for name in MALLOC_SETTINGS:
         monkeypatch.delenv(name, raising=False)
     ex = DaskExecutor(local_workers=1)
     try:
-        (env, threads), = ex.client.run(_worker_settings).values()
+        (env, threads, housekeeping, profiling), = ex.client.run(_worker_settings).values()
     finally:
         ex.close()
     assert env == {"MALLOC_MMAP_THRESHOLD_": str(32 << 20),
                    "MALLOC_TRIM_THRESHOLD_": str(1 << 30), "OPENBLAS_NUM_THREADS": "1"}
     assert threads == 1
+    assert housekeeping == LOCAL_CLUSTER_HOUSEKEEPING and profiling is False
+    import dask
+
+    assert dask.config.get("distributed.admin.tick.interval") != "1s"   # this process: untouched

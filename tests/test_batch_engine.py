@@ -143,6 +143,48 @@ def test_batch_reproduces_single_study_runs_on_one_and_two_local_workers(referen
         assert float(prop[name]["prob_beats_equal_weight_ceq"]) == pop["prob_beats_equal_weight_ceq"]
 
 
+class _RecordingExecutor(ProcessExecutor):
+    """Local worker processes that note the block indices of every task."""
+
+    def __init__(self, workers):
+        super().__init__(workers)
+        self.tasks = []
+
+    def submit(self, fn, *args, key=""):
+        self.tasks.append((args[2], tuple(args[3])))
+        return super().submit(fn, *args, key=key)
+
+
+def test_cheap_blocks_share_tasks_and_change_no_number(reference, tmp_path):
+    """By default the batch groups consecutive blocks of a study into tasks of up to
+    TASK_SECONDS of modelled work (simulate.block_seconds): fewer round trips to the
+    workers, every block still written on its own, the same numbers."""
+    inputs, expected = reference
+    plan = batch.load_plan(inputs / "plan.toml")
+    ex = _RecordingExecutor(2)
+    try:
+        res = run_batch(plan, tmp_path / "grouped", quiet=True, pack=False, executor=ex)
+    finally:
+        ex.close()
+    assert res.exit_status == 0
+    assert differences(numbers(tmp_path / "grouped"), expected) == []
+    by_spec = {}
+    for spec, idx in ex.tasks:
+        by_spec.setdefault(id(spec), (spec, []))[1].append(idx)
+    assert len(by_spec) == 2
+    for spec, tasks in by_spec.values():
+        blocks = simulate.block_plan(spec)
+        flat = [i for t in tasks for i in t]
+        assert sorted(flat) == list(range(len(blocks)))        # each block once
+        assert len(tasks) < len(blocks)                          # some were grouped
+        for t in tasks:
+            assert list(t) == list(range(t[0], t[0] + len(t)))   # consecutive
+            cost = sum(simulate.block_seconds(spec, blocks[i]) for i in t)
+            assert len(t) == 1 or cost <= batch.TASK_SECONDS
+    files = sorted((tmp_path / "grouped" / "studies").glob("*/blocks/block-*.bin"))
+    assert len(files) == sum(len(simulate.block_plan(s)) for s, _ in by_spec.values())
+
+
 def test_infeasible_study_is_recorded_and_the_other_completes(reference, tmp_path):
     inputs, _ = reference
     (inputs / "bad.toml").write_text(

@@ -125,3 +125,29 @@ def test_tapered_automatic_plan_changes_no_digit():
     ref = _dump(run_resampling(replace(spec, block_size=CHUNK_DRAWS)))
     assert _dump(run_resampling(spec)) == ref
     assert _dump(run_resampling(spec, workers=2)) == ref
+
+
+def test_block_seconds_follow_the_cost_model_block_by_block():
+    """The modelled cost of each block (what batch runners group tasks by): its draws at
+    the per-draw model, at the block's own history length, plus the frontier model for
+    each draw of the block that traces frontiers (the first ``frontier_draws`` main
+    draws); the plan's blocks add up to the whole study's model."""
+    spec = _rich_spec(n=30).resolved()
+    plan = block_plan(spec)
+    per_draw = {t: engine._draw_micros(spec, t) for t in (120, 36)}
+    front = engine._frontier_micros(spec)
+    for b in plan:
+        draws = b.stop - b.start
+        traced = max(0, min(b.stop, 60) - b.start) if b.part == "main" else 0
+        expected = (draws * per_draw[b.length] + traced * front) / 1e6
+        assert engine.block_seconds(spec, b) == pytest.approx(expected, rel=1e-12)
+    main = [b for b in plan if b.part == "main"]
+    assert engine.block_seconds(spec, main[0]) > 5 * engine.block_seconds(spec, main[-1])
+    total = sum(engine.block_seconds(spec, b) for b in plan)
+    whole = (spec.draws * per_draw[120] + 60 * front + spec.self_check_draws * per_draw[120]
+             + spec.n_sweep_draws * per_draw[36]) / 1e6
+    assert total == pytest.approx(whole, rel=1e-12)
+    # no frontier rule traced: no frontier cost
+    flat = replace(spec, frontier_points=0)
+    assert engine.block_seconds(flat, main[0]) == pytest.approx(
+        (main[0].stop - main[0].start) * per_draw[120] / 1e6, rel=1e-12)
