@@ -264,7 +264,10 @@ def main(argv=None) -> int:
         others: dict = {}
         dask_start = None
 
+        every: dict = {}
+
         def keep(name, phase):
+            every.setdefault(name, []).append(phase.wall)
             if name not in walls or phase.wall < walls[name]:
                 walls[name] = phase.wall
                 others[name] = phase.others
@@ -276,17 +279,19 @@ def main(argv=None) -> int:
                 keep("1 local worker (baseline)", ph.stop())
             results[f"one{rep}"] = _numbers(work / f"one{rep}")
 
-            with _Phase() as ph:
-                ex = ProcessExecutor(2, preload=(engine.run_block.__module__,))
-                try:
-                    batch.run_batch(plan, work / f"two{rep}", executor=ex, engine=engine,
-                                    quiet=True, pack=False)
-                    keep("2 local workers", ph.stop())
-                finally:
-                    ex.close()
-            results[f"two{rep}"] = _numbers(work / f"two{rep}")
+            def local_two():
+                with _Phase() as ph:
+                    ex = ProcessExecutor(2, preload=(engine.run_block.__module__,))
+                    try:
+                        batch.run_batch(plan, work / f"two{rep}", executor=ex, engine=engine,
+                                        quiet=True, pack=False)
+                        keep("2 local workers", ph.stop())
+                    finally:
+                        ex.close()
+                results[f"two{rep}"] = _numbers(work / f"two{rep}")
 
-            if not args.no_dask:
+            def dask_two():
+                nonlocal dask_start
                 t = time.perf_counter()
                 dx = DaskExecutor(local_workers=2)
                 dask_start = time.perf_counter() - t
@@ -298,6 +303,12 @@ def main(argv=None) -> int:
                 finally:
                     dx.close()
                 results[f"dask{rep}"] = _numbers(work / f"dask{rep}")
+
+            # the two 2-worker executors swap places every repetition, so that neither
+            # always runs in the later (possibly slower) part of the host's day
+            order = [local_two] if args.no_dask else [local_two, dask_two]
+            for phase in (order if rep % 2 == 0 else order[::-1]):
+                phase()
             for rep_out in work.glob(f"*{rep}"):
                 if rep_out.is_dir():
                     shutil.rmtree(rep_out, ignore_errors=True)
@@ -329,7 +340,12 @@ def main(argv=None) -> int:
             workers = 1 if name.startswith("1 ") else 2
             print(f"{name:<28}{w:>9.1f}{base / w:>9.2f}x{base / w / workers:>11.0%}"
                   f"{others[name]:>9.0%}")
+        for name, ws in every.items():
+            print(f"  every run, {name}: " + ", ".join(f"{w:.1f}" for w in ws) + " s")
         if "2-worker Dask cluster" in walls:
+            pairs = [d / l for d, l in zip(every["2-worker Dask cluster"], every["2 local workers"])]
+            print("  Dask / local, repetition by repetition: "
+                  + ", ".join(f"{r:.2f}" for r in pairs))
             ratio = walls["2-worker Dask cluster"] / walls["2 local workers"]
             print(f"Dask / local processes (2 workers): {ratio:.2f} "
                   f"(cluster start-up {dask_start:.1f} s, not included; local worker start-up "

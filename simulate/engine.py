@@ -335,6 +335,15 @@ def block_seconds(spec: "ResampleSpec", block: "Block") -> float:
 
 
 def _jsonable(obj):
+    t = type(obj)     # exact types first: a summary holds thousands of plain values
+    if t is float:
+        return obj if math.isfinite(obj) else None
+    if t is int or t is str or t is bool or obj is None:
+        return obj
+    if t is dict:
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if t is list:
+        return [_jsonable(v) for v in obj]
     if isinstance(obj, Mapping):
         return {str(k): _jsonable(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):

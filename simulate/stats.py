@@ -168,6 +168,13 @@ class WeightHistogram:
         self.width = float(width)
         self.n_bins = int(round((high - low) / width)) + 1
         self.zero_tol = float(zero_tol)
+        nb = self.n_bins
+        centers = self.low + (np.arange(nb) + 0.5) * self.width
+        # regular bins that lie wholly at or below zero come before the atom
+        self._split = int(np.sum(self.low + (np.arange(nb) + 1) * self.width <= 0.0))
+        # value of each position along the real line (see percentiles)
+        self._seq_values = np.concatenate(([np.nan], centers[:self._split], [0.0],
+                                           centers[self._split:], [np.nan]))
 
     @property
     def n_columns(self) -> int:
@@ -185,12 +192,9 @@ class WeightHistogram:
         regular = counts[1:nb + 1]
         total = int(counts.sum())
         # Order of the mass along the real line: underflow, regular bins below zero,
-        # the zero atom, regular bins at or above zero, overflow.
-        centers = self.low + (np.arange(nb) + 0.5) * self.width
-        # regular bins that lie wholly at or below zero come before the atom
-        split = int(np.sum(self.low + (np.arange(nb) + 1) * self.width <= 0.0))
+        # the zero atom, regular bins at or above zero, overflow (layout fixed at __init__).
+        split, seq_values = self._split, self._seq_values
         seq_counts = np.concatenate(([under], regular[:split], [zero], regular[split:], [over]))
-        seq_values = np.concatenate(([np.nan], centers[:split], [0.0], centers[split:], [np.nan]))
         cum = np.cumsum(seq_counts)
         if total == 0:
             return [None for _ in qs]
