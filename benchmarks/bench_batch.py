@@ -272,37 +272,31 @@ def main(argv=None) -> int:
                 walls[name] = phase.wall
                 others[name] = phase.others
 
+        def timed(name, tag, rep, ex):
+            """Run the plan on ``ex`` (closed afterwards) as one timed phase named ``name``."""
+            try:
+                with _Phase() as ph:
+                    batch.run_batch(plan, work / f"{tag}{rep}", executor=ex, engine=engine,
+                                    quiet=True, pack=False)
+                    keep(name, ph.stop())
+            finally:
+                ex.close()
+            results[f"{tag}{rep}"] = _numbers(work / f"{tag}{rep}")
+
         for rep in range(max(1, args.repeat)):
-            with _Phase() as ph:
-                batch.run_batch(plan, work / f"one{rep}", executor=InlineExecutor(),
-                                engine=engine, quiet=True, pack=False)
-                keep("1 local worker (baseline)", ph.stop())
-            results[f"one{rep}"] = _numbers(work / f"one{rep}")
+            timed("1 local worker (baseline)", "one", rep, InlineExecutor())
 
             def local_two():
-                with _Phase() as ph:
-                    ex = ProcessExecutor(2, preload=(engine.run_block.__module__,))
-                    try:
-                        batch.run_batch(plan, work / f"two{rep}", executor=ex, engine=engine,
-                                        quiet=True, pack=False)
-                        keep("2 local workers", ph.stop())
-                    finally:
-                        ex.close()
-                results[f"two{rep}"] = _numbers(work / f"two{rep}")
+                # the pool starts its fork server at the first task, inside the timed phase
+                timed("2 local workers", "two", rep,
+                      ProcessExecutor(2, preload=(engine.run_block.__module__,)))
 
             def dask_two():
                 nonlocal dask_start
                 t = time.perf_counter()
                 dx = DaskExecutor(local_workers=2)
                 dask_start = time.perf_counter() - t
-                try:
-                    with _Phase() as ph:
-                        batch.run_batch(plan, work / f"dask{rep}", executor=dx, engine=engine,
-                                        quiet=True, pack=False)
-                        keep("2-worker Dask cluster", ph.stop())
-                finally:
-                    dx.close()
-                results[f"dask{rep}"] = _numbers(work / f"dask{rep}")
+                timed("2-worker Dask cluster", "dask", rep, dx)
 
             # the two 2-worker executors swap places every repetition, so that neither
             # always runs in the later (possibly slower) part of the host's day
