@@ -51,7 +51,8 @@ def run_blocks_task(run_block: Callable, to_bytes: Callable, spec: Any, indices:
     spec : object
         The study's resampling spec (seeds included).
     indices : tuple of int
-        Consecutive block indices (usually one; ``--blocks-per-task`` groups several).
+        Consecutive block indices of one study (one, or several cheap ones: see
+        ``noiseproof.batch.TASK_SECONDS`` and ``--blocks-per-task``).
     delay : float, default 0
         Seconds to sleep before each block (test hook ``NOISEPROOF_BATCH_BLOCK_DELAY``:
         slows a run down so that fault tests can interrupt it mid-way).
@@ -110,7 +111,6 @@ class InlineExecutor:
 
     kind = "inline"
     slots = 1
-    blocks_per_task = 1
 
     def __init__(self):
         _retain_freed_memory()
@@ -150,7 +150,6 @@ class ProcessExecutor:
     """
 
     kind = "processes"
-    blocks_per_task = 1
 
     def __init__(self, workers: int, *, preload: tuple = ()):
         if workers < 1:
@@ -248,13 +247,6 @@ class DaskExecutor:
     """
 
     kind = "dask"
-    #: Default blocks per task. A scheduler round trip costs about 6-10 ms on a local
-    #: cluster, against about 0.25 s of work in an automatic block; grouping blocks saves
-    #: that but balances worse (frontier blocks cost several times the others): an 8-study,
-    #: 30-asset plan on 2 workers took 18.2 s with 1 block per task, 21.8 s with 2, 25.2 s
-    #: with 4 (local processes: 21.1 s). ``--blocks-per-task`` raises it for large
-    #: clusters, where the scheduler becomes the limit; results do not depend on it.
-    blocks_per_task = 1
 
     def __init__(self, *, address: Optional[str] = None, local_workers: Optional[int] = None,
                  client=None, connect_timeout: float = 20.0):

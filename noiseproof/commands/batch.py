@@ -39,9 +39,10 @@ def register(sub) -> None:
     where.add_argument("--dask-local", type=int, metavar="N", default=None,
                        help="start a local Dask cluster of N single-threaded worker processes")
     where.add_argument("--blocks-per-task", type=int, metavar="K", default=None,
-                       help="send K consecutive blocks per task: less scheduler overhead per "
-                            "block, coarser durable progress, worse balance; results unchanged "
-                            "(default 1)")
+                       help="send exactly K consecutive blocks per task: less scheduler "
+                            "overhead per block, coarser durable progress, worse balance; "
+                            "results unchanged (default: cheap blocks of a study share a task "
+                            "up to about 0.25 s of modelled work)")
     p.add_argument("--resume", action="store_true",
                    help="continue the batch in --out: skip finished studies and blocks, "
                         "recompute corrupt blocks, take over a stale lock")
