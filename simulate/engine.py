@@ -1608,6 +1608,9 @@ def run_resampling(spec: ResampleSpec, *, workers: int = 1,
             while nxt in done:
                 merger.add(done.pop(nxt))
                 nxt += 1
+        # every block is in: the workers exit (about 10 ms) while this process finalises,
+        # instead of before it (the pool's own thread joins them)
+        pool.shutdown(wait=False)
     return merger.finish()
 
 
@@ -1696,8 +1699,9 @@ def _finalize(spec: ResampleSpec, parts: dict) -> ResampleResult:
         h = ctx.hists[i]
         hist = cnt[f"hist{i}"]
         weights = {}
+        pcts = h.percentiles_rows(hist, PERCENTILES, wmin[i], wmax[i])
         for j, a in enumerate(assets):
-            pct = h.percentiles(hist[j], PERCENTILES, float(wmin[i, j]), float(wmax[i, j]))
+            pct = pcts[j]
             entry = {"mean": float(w_mean[i, j]), "sd": float(w_sd[i, j])}
             entry.update({f"p{q}": v for q, v in zip(PERCENTILES, pct)})
             entry.update({"held": float(cnt["held"][i, j] / nr[i]), "min": float(wmin[i, j]),

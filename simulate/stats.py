@@ -175,6 +175,10 @@ class WeightHistogram:
         # value of each position along the real line (see percentiles)
         self._seq_values = np.concatenate(([np.nan], centers[:self._split], [0.0],
                                            centers[self._split:], [np.nan]))
+        # the count columns in that order (see percentiles_rows)
+        regular = np.arange(1, nb + 1)
+        self._seq_order = np.concatenate(([0], regular[:self._split], [nb + 2],
+                                          regular[self._split:], [nb + 1]))
 
     @property
     def n_columns(self) -> int:
@@ -187,24 +191,36 @@ class WeightHistogram:
         the share of draws at or below it reaches q): the zero atom reports 0.0, a
         regular bin its midpoint clipped to the observed ``[vmin, vmax]``.
         """
-        nb = self.n_bins
-        under, over, zero = counts[0], counts[nb + 1], counts[nb + 2]
-        regular = counts[1:nb + 1]
-        total = int(counts.sum())
-        # Order of the mass along the real line: underflow, regular bins below zero,
-        # the zero atom, regular bins at or above zero, overflow (layout fixed at __init__).
-        split, seq_values = self._split, self._seq_values
-        seq_counts = np.concatenate(([under], regular[:split], [zero], regular[split:], [over]))
-        cum = np.cumsum(seq_counts)
-        if total == 0:
-            return [None for _ in qs]
+        return self.percentiles_rows(np.asarray(counts)[None, :], qs, [vmin], [vmax])[0]
+
+    def percentiles_rows(self, counts: np.ndarray, qs, vmin, vmax) -> list:
+        """:meth:`percentiles` of every row of ``counts`` (rows, :attr:`n_columns`) at once.
+
+        ``vmin`` and ``vmax`` hold each row's observed range. Returns one list of
+        ``len(qs)`` values (float or None) per row.
+        """
+        # Order of the mass along the real line: underflow, regular bins below zero, the
+        # zero atom, regular bins at or above zero, overflow (layout fixed at __init__).
+        cum = np.cumsum(np.asarray(counts, dtype=np.int64)[:, self._seq_order], axis=1)
+        total = cum[:, -1].copy()                                         # (rows,)
+        targets = np.stack([np.maximum(1, np.ceil(q / 100.0 * total - 1e-9)) for q in qs],
+                           axis=1)                                        # (rows, Q)
+        # the first position whose cumulative count reaches the target (searchsorted, left),
+        # for all rows in one search: row r is shifted by r * step, above every count
+        rows, width = cum.shape
+        step = int(total.max(initial=0)) + 2
+        shift = np.arange(rows, dtype=np.int64)[:, None] * step
+        cum += shift
+        pos = np.searchsorted(cum.ravel(), (targets.astype(np.int64) + shift).ravel())
+        pos = pos.reshape(rows, -1) - np.arange(rows)[:, None] * width
+        np.minimum(pos, width - 1, out=pos)                 # rows without draws (None below)
+        values = self._seq_values[pos].tolist()
         out = []
-        for q in qs:
-            target = max(1, int(math.ceil(q / 100.0 * total - 1e-9)))
-            pos = int(np.searchsorted(cum, target, side="left"))
-            v = seq_values[pos]
-            if not math.isfinite(v):
-                out.append(None)
-            else:
-                out.append(float(min(max(v, vmin), vmax)) if v != 0.0 else 0.0)
+        for r, row in enumerate(values):
+            if total[r] == 0:
+                out.append([None for _ in qs])
+                continue
+            lo, hi = float(vmin[r]), float(vmax[r])
+            out.append([None if not math.isfinite(v) else
+                        (float(min(max(v, lo), hi)) if v != 0.0 else 0.0) for v in row])
         return out

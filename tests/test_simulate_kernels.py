@@ -67,6 +67,33 @@ def test_histogram_percentiles_within_half_a_bin_of_numpy():
     check()
 
 
+def test_histogram_percentiles_of_many_rows_at_once(rng):
+    """``percentiles_rows`` (all assets in one pass, as the summary uses it) against numpy
+    2.4's percentile(method="inverted_cdf") column by column, with a column of zeros, a
+    column with values beyond the bins (None) and rows of very different totals."""
+    from simulate.stats import WeightHistogram
+
+    h = WeightHistogram(-0.5, 1.5, 0.001)
+    x = np.column_stack([rng.normal(0.2, 0.3, 400), np.zeros(400),
+                         np.where(rng.random(400) < 0.3, 0.0, rng.random(400)),
+                         np.r_[rng.random(390), np.full(10, 9.0)]])
+    counts = np.zeros((x.shape[1], h.n_columns), np.int64)
+    K.bin_counts(x, h.low, h.width, h.n_bins, h.zero_tol, counts)
+    counts = np.vstack([counts, np.zeros((1, h.n_columns), np.int64)])   # a row without draws
+    qs = (0, 5, 25, 50, 75, 95, 99, 100)
+    got = h.percentiles_rows(counts, qs, np.r_[x.min(axis=0), 0.0], np.r_[x.max(axis=0), 0.0])
+    assert got[-1] == [None] * len(qs)
+    for j in range(x.shape[1]):
+        for q, g in zip(qs, got[j]):
+            ref = np.percentile(x[:, j], q, method="inverted_cdf")
+            if not h.low <= ref < h.low + h.width * h.n_bins:     # under- or overflow bin
+                assert g is None, (j, q, g)
+            else:
+                assert abs(g - ref) <= 0.0005 + 1e-12, (j, q, g, ref)
+    assert got[1] == [0.0] * len(qs)
+    assert got[3][-1] is None and got[3][0] is not None
+
+
 def test_greedy_fill_kernel_matches_numpy_reference(rng):
     """optimise's compiled greedy vertex (cold starts of the batched QP) against the numpy
     reference ``optimise.constraints._greedy_fill``: identical to the last bit, with ties,
