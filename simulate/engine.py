@@ -265,7 +265,9 @@ class ResampleSpec:
 #: whenever a code change alters the numbers of the same study (even in the last bits), so
 #: that ``--resume`` recomputes the blocks an older version wrote instead of merging them.
 #: 2: the moments path's Wishart matrix from the triangles alone (``wishart_triangular``).
-NUMERICS = 2
+#: 3: normal and Student-t histories of 40 assets or more form ``Z L'`` by a triangular
+#: product (``generators.times_factor_t``).
+NUMERICS = 3
 
 #: Seconds of one core's work an automatic block aims at: long enough that handing a block
 #: to a worker and merging its result (about 1 ms) are small beside it, short enough that

@@ -105,6 +105,31 @@ def _normals(rng: np.random.Generator, shape) -> np.ndarray:
     return _random.standard_normal_into(rng, np.empty(shape))
 
 
+#: From this many assets, ``Z L'`` is formed by a triangular product (BLAS ``trmm``, in
+#: place) instead of a general one: it skips the zeros above the factor's diagonal, about
+#: half the work (at T = 120 on the benchmark machine, per draw: 11 against 14 us at N = 50,
+#: 108 against 187 us at N = 200). Below it the general product is as fast or faster. The
+#: two round differently in the last bits, so the choice is a fixed function of N.
+TRIANGULAR_MIN_ASSETS = 40
+
+
+def times_factor_t(z: np.ndarray, chol_t: np.ndarray) -> np.ndarray:
+    """``z @ chol_t`` for ``z`` (m, N), C-contiguous and ours to overwrite, and ``chol_t``
+    (N, N) upper triangular (the transposed lower Cholesky factor), C-contiguous.
+
+    From :data:`TRIANGULAR_MIN_ASSETS` assets the product overwrites ``z`` (BLAS
+    ``dtrmm`` on the Fortran view: ``(z L')' = L z'``) and ``z`` is returned; below, a new
+    array from the general product.
+    """
+    n = chol_t.shape[0]
+    if n < TRIANGULAR_MIN_ASSETS or z.shape[0] == 0:
+        return z @ chol_t
+    from scipy.linalg.blas import dtrmm
+
+    out = dtrmm(1.0, chol_t.T, z.T, side=0, lower=1, trans_a=0, diag=0, overwrite_b=1)
+    return out.T
+
+
 # --------------------------------------------------------------------------- generators
 
 @dataclass(frozen=True)
@@ -131,7 +156,7 @@ class NormalGenerator:
         """``count`` histories of ``length`` rows, shape ``(count, length, N)``."""
         n = self.mean.shape[0]
         z = _normals(rng, (count * length, n))
-        x = z @ self._chol_t
+        x = times_factor_t(z, self._chol_t)
         _kernels.add_row(x, self._mean64)          # x += mean, without numpy's short rows
         return x.reshape(count, length, n)
 
@@ -222,7 +247,7 @@ class StudentTGenerator:
         nu = float(self.degrees_of_freedom)
         z = _normals(rng, (count * length, n))
         g = rng.chisquare(nu, size=count * length)
-        x = z @ self._chol_t
+        x = times_factor_t(z, self._chol_t)
         x *= np.sqrt((nu - 2.0) / g)[:, None]
         x += self.mean
         return x.reshape(count, length, n)

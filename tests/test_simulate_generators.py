@@ -50,6 +50,33 @@ def test_normal_generator_moments(rng):
     np.testing.assert_allclose(np.cov(x, rowvar=False), cov, atol=4 * np.sqrt(2 / x.shape[0]) * 0.06 ** 2)
 
 
+@pytest.mark.parametrize("n", [5, 39, 40, 64, 200])
+def test_times_factor_t_is_the_product_with_the_factor(rng, n):
+    """``times_factor_t(z, L')`` against numpy's general product ``z @ L'`` (to rounding):
+    in place from TRIANGULAR_MIN_ASSETS assets (BLAS trmm), a new array below; and the
+    normal generator's rows are ``mean + z L'`` for the same normals."""
+    from simulate.generators import TRIANGULAR_MIN_ASSETS, times_factor_t
+
+    a = rng.normal(size=(n + 20, n))
+    cov = a.T @ a / (n + 20)
+    lt = np.ascontiguousarray(np.linalg.cholesky(cov).T)
+    z = rng.normal(size=(360, n))
+    ref = z @ lt
+    work = z.copy()
+    x = times_factor_t(work, lt)
+    assert x.shape == (360, n) and x.flags.c_contiguous
+    assert np.shares_memory(x, work) == (n >= TRIANGULAR_MIN_ASSETS)
+    np.testing.assert_allclose(x, ref, rtol=0, atol=1e-13 * np.abs(ref).max())
+    assert times_factor_t(np.empty((0, n)), lt).shape == (0, n)
+
+    mu = np.linspace(-0.01, 0.01, n)
+    g = NormalGenerator(mu, cov)
+    drawn = g.draw(np.random.Generator(np.random.SFC64(7)), 3, 120).reshape(-1, n)
+    normals = np.random.Generator(np.random.SFC64(7)).standard_normal((360, n))
+    np.testing.assert_allclose(drawn, normals @ g._chol_t + mu, rtol=0,
+                               atol=1e-13 * np.abs(drawn).max())
+
+
 def test_normal_generator_rejects_singular_covariance():
     cov = np.ones((3, 3))
     with pytest.raises(SingularCovarianceError, match="not positive definite"):
