@@ -1610,9 +1610,6 @@ def run_resampling(spec: ResampleSpec, *, workers: int = 1,
             while nxt in done:
                 merger.add(done.pop(nxt))
                 nxt += 1
-        # every block is in: the workers exit (about 10 ms) while this process finalises,
-        # instead of before it (the pool's own thread joins them)
-        pool.shutdown(wait=False)
     return merger.finish()
 
 
