@@ -1587,30 +1587,60 @@ def run_resampling(spec: ResampleSpec, *, workers: int = 1,
     done = {}
     nxt = 0
     window = 3 * workers
-    # the workers are forked with BLAS at one thread already, so that they need not set it
-    # (which would start OpenBLAS's spinning helper threads; see _one_blas_thread)
-    with _one_blas_thread(), cf.ProcessPoolExecutor(max_workers=workers, mp_context=ctx,
-                                                    initializer=_worker_init,
-                                                    initargs=(spec,)) as pool:
-        it = iter(plan)
-        for b in it:
-            pending[pool.submit(_run_block_worker, b.index)] = b
-            if len(pending) >= window:
-                break
-        while pending:
-            finished, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
-            for fut in finished:
-                b = pending.pop(fut)
-                done[b.index] = fut.result()
-                if progress is not None:
-                    progress(b.stop - b.start)
-                nb = next(it, None)
-                if nb is not None:
-                    pending[pool.submit(_run_block_worker, nb.index)] = nb
-            while nxt in done:
-                merger.add(done.pop(nxt))
-                nxt += 1
-    return merger.finish()
+    manager = None
+    try:
+        # the workers are forked with BLAS at one thread already, so that they need not set
+        # it (which would start OpenBLAS's spinning helper threads; see _one_blas_thread)
+        with _one_blas_thread(), cf.ProcessPoolExecutor(max_workers=workers, mp_context=ctx,
+                                                        initializer=_worker_init,
+                                                        initargs=(spec,)) as pool:
+            it = iter(plan)
+            submitted = 0
+
+            def submit(block):
+                nonlocal submitted, manager
+                pending[pool.submit(_run_block_worker, block.index)] = block
+                submitted += 1
+                if submitted == len(plan):
+                    manager = _release_workers(pool)
+
+            for b in it:
+                submit(b)
+                if len(pending) >= window:
+                    break
+            while pending:
+                finished, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
+                for fut in finished:
+                    b = pending.pop(fut)
+                    done[b.index] = fut.result()
+                    if progress is not None:
+                        progress(b.stop - b.start)
+                    nb = next(it, None)
+                    if nb is not None:
+                        submit(nb)
+                while nxt in done:
+                    merger.add(done.pop(nxt))
+                    nxt += 1
+        result = merger.finish()
+    finally:
+        if manager is not None:
+            manager.join()           # every worker has exited and been reaped
+    return result
+
+
+def _release_workers(pool):
+    """Once the last block is submitted, shut the pool down without waiting: its manager
+    thread then stops the workers as soon as the last result is in, and they exit (about
+    10-30 ms at N = 200) while this process finalises, instead of before. Returns that
+    thread, which joins the workers; the caller joins it before returning, so no worker
+    outlives the call. None, and the pool is left to its ``with`` block, if the executor
+    lacks the thread (an attribute of the standard library's, not a public one).
+    """
+    manager = getattr(pool, "_executor_manager_thread", None)
+    if manager is None:
+        return None
+    pool.shutdown(wait=False)        # pending blocks still run and their results arrive
+    return manager
 
 
 # --------------------------------------------------------------------------- the result

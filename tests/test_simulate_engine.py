@@ -7,6 +7,7 @@ averaged frontier's feasibility; numpy 2.4 ``percentile(method="inverted_cdf")``
 """
 import json
 import math
+import os
 from dataclasses import replace
 
 import numpy as np
@@ -475,3 +476,62 @@ def test_one_and_two_workers_agree_where_blas_threads_would_split_products_diffe
                         frontier_points=0, attribution=False, self_check_draws=0,
                         block_size=250, draw="histories")
     assert _dump(run_resampling(spec, workers=1)) == _dump(run_resampling(spec, workers=2))
+
+
+# ---------------------------------------------------------------- worker processes
+
+#: (directory, block index that fails or -1): read by _recording_worker in the forked workers
+_RECORD = [None, -1]
+
+
+def _recording_worker(index):  # runs in the forked workers
+    import threading
+    import time
+
+    from simulate import engine
+
+    # a slow exit (a process waits for its threads), so that a parent that did not wait
+    # for its workers would be caught
+    threading.Thread(target=time.sleep, args=(1.0,)).start()
+    with open(f"{_RECORD[0]}/{os.getpid()}", "a") as f:
+        f.write(f"{index}\n")
+    if index == _RECORD[1]:
+        raise DataError(f"block {index} failed on purpose")
+    return engine.run_block(engine._WORKER_SPEC, index)
+
+
+def _gone(pid):
+    try:
+        os.kill(pid, 0)          # a zombie (exited, not reaped) still answers
+    except ProcessLookupError:
+        return True
+    return False
+
+
+@pytest.mark.parametrize("fail_at", [-1, 2, 15])
+def test_two_workers_are_reaped_before_the_call_returns(monkeypatch, tmp_path, fail_at):
+    """The workers exit while the parent finalises, but none outlives run_resampling,
+    whether it returns or raises: each worker's process is gone (reaped, not a zombie) when
+    the call is over, and its CPU time is in the parent's RUSAGE_CHILDREN."""
+    import resource
+
+    from simulate import engine
+
+    mu, cov = recipe_a(6)
+    spec = _spec(mu, cov, [LO_MV], draws=16 * CHUNK_DRAWS, block_size=CHUNK_DRAWS,
+                 frontier_points=0, attribution=False)
+    monkeypatch.setattr(engine, "_run_block_worker", _recording_worker)
+    _RECORD[:] = [str(tmp_path), fail_at]
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    if fail_at < 0:
+        run_resampling(spec, workers=2)
+    else:
+        with pytest.raises(DataError, match="failed on purpose"):
+            run_resampling(spec, workers=2)
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    pids = [int(p.name) for p in tmp_path.iterdir()]
+    assert len(pids) == 2 and all(_gone(pid) for pid in pids)
+    blocks = sorted(int(i) for p in tmp_path.iterdir() for i in p.read_text().split())
+    if fail_at < 0:
+        assert blocks == list(range(16))
+        assert after.ru_utime + after.ru_stime > before.ru_utime + before.ru_stime
