@@ -288,7 +288,9 @@ def auto_block_draws(spec: "ResampleSpec") -> int:
 
     From a rough cost model of one draw on one core, fitted on the benchmark machine
     (history path, T = 120: about 18, 105 and 750 microseconds at N = 10, 50 and 200
-    with one mean-variance rule): ``0.012 us * (T N + R' N^2) + 2 us * R'`` with ``R'``
+    with one mean-variance rule; since the triangular ``Z L'`` and the other speed work a
+    draw costs about two thirds of that, so blocks hold less real work than the model
+    says, which changes no number): ``0.012 us * (T N + R' N^2) + 2 us * R'`` with ``R'``
     the rules that use estimates (each counted three times with the attribution runs).
     The block holds about :data:`BLOCK_SECONDS` of that work, in whole chunks; less when
     that leaves a study fewer than :data:`MIN_BLOCKS` blocks to share among workers, but
