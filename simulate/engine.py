@@ -1012,9 +1012,12 @@ def run_block(spec: ResampleSpec, block_index: int) -> BlockResult:
 
 
 def _blas_controller():
-    """threadpoolctl's controller of this process's thread pools (built once)."""
+    """threadpoolctl's controller of this process's thread pools (built once, after
+    scipy's BLAS is loaded: numpy and scipy bring an OpenBLAS each, and the engine calls
+    both)."""
     global _BLAS_CONTROLLER
     if _BLAS_CONTROLLER is None:
+        import scipy.linalg.blas  # noqa: F401  (its library must be in the controller)
         from threadpoolctl import ThreadpoolController
 
         _BLAS_CONTROLLER = ThreadpoolController()

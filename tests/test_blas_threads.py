@@ -44,3 +44,21 @@ def test_command_line_sets_one_openblas_thread_unless_the_user_did():
                          env=dict(env, OPENBLAS_NUM_THREADS="2"), check=True,
                          capture_output=True, text=True).stdout.split()
     assert out[0] == "2"
+
+
+def test_the_engine_limits_every_blas_library_it_calls():
+    """numpy and scipy each bring their own OpenBLAS; the histories of 40 assets or more use
+    scipy's (``dtrmm`` in ``simulate.generators.times_factor_t``). The engine's limit must
+    cover both, or an in-process block would run scipy's product on two threads while a
+    worker runs it on one (whose last bits can differ)."""
+    import scipy.linalg.blas  # noqa: F401  (the library times_factor_t calls)
+
+    loaded = {i["filepath"] for i in threadpool_info() if i["user_api"] == "blas"}
+    limited = {c.filepath for c in engine._blas_controller().lib_controllers
+               if c.user_api == "blas"}
+    assert len(loaded) >= 1 and loaded <= limited
+    with threadpool_limits(2, user_api="blas"):
+        if max(_blas_threads()) < 2:
+            pytest.skip("BLAS here cannot run two threads")
+        with engine._one_blas_thread():
+            assert all(n == 1 for n in _blas_threads())
