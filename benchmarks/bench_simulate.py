@@ -345,7 +345,7 @@ def main(argv=None):
             "2 workers, short run", "2w start-up (s)", "2w steady", "steady/1w",
             "SLSQP loop", "quadprog loop",
             "floor", "engine/quadprog", "engine/floor", "target 1 core", "met",
-            "2w/1w at least 1.8x")
+            f"2w/1w at least {TWO_WORKER_TARGET}x")
     print(" | ".join(head))
     print(" | ".join("---" for _ in head))
     for n, one, two, fl, sl, qp, short, two_short, fixed, steady in rows:

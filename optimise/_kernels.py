@@ -325,14 +325,7 @@ def qp_solve(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i)
                       0.0, xk)
     if st != FACTOR_SINGULAR:
         return st, it
-    hscale = 0.0
-    gscale = 0.0
-    for i in range(n):
-        hscale = max(hscale, H[i, i])
-        gscale = max(gscale, abs(c[i]))
-    if hscale <= 0.0:
-        hscale = 1.0
-    gscale = max(gscale, hscale)
+    hscale, gscale = _scales(H, c)
     delta = _PROX * hscale
     for outer in range(_PROX_MAXOUTER):
         for j in range(n):

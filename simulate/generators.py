@@ -32,6 +32,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import optimize, special
+from scipy.linalg.blas import dtrmm
 
 from estimators.core import DataError, SettingsError, SingularCovarianceError
 
@@ -124,8 +125,6 @@ def times_factor_t(z: np.ndarray, chol_t: np.ndarray) -> np.ndarray:
     n = chol_t.shape[0]
     if n < TRIANGULAR_MIN_ASSETS or z.shape[0] == 0:
         return z @ chol_t
-    from scipy.linalg.blas import dtrmm
-
     out = dtrmm(1.0, chol_t.T, z.T, side=0, lower=1, trans_a=0, diag=0, overwrite_b=1)
     return out.T
 
