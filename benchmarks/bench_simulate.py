@@ -34,6 +34,9 @@ from benchmarks._machine import cpu_name
 TARGETS = {10: 40_000, 50: 8_000, 200: 1_000}
 #: Issue 5: two workers at least this many times one (best of the interleaved rounds each)
 TWO_WORKER_TARGET = 1.8
+#: Rounds whose two-worker run took at most this times the CPU seconds of the one-core run
+#: are listed apart: there the host ran both cores at the one-core speed
+CALM_CPU = 1.05
 LENGTH = 120
 GAMMA = 3.0
 
@@ -312,6 +315,7 @@ def main(argv=None):
     print(f"cores now  2 processes of a pure-Python loop run {par:.2f}x one (the ceiling for "
           f"2 workers at this moment; 2.00 on an idle 2-core machine)")
     rows = []
+    rounds_by_cpu = {}
     for n in sizes:
         # about 5 s on one core: a short study, long enough that starting the worker
         # processes (measured separately below) does not dominate the two-worker figure
@@ -319,12 +323,14 @@ def main(argv=None):
         d_slsqp = max(2, int({10: 200, 50: 40, 200: 3}.get(n, 10) * scale))
         d_qp = max(10, int({10: 3000, 50: 1000, 200: 100}.get(n, 200) * scale))
         one = two = two_short = 0.0
-        short = max(1000, d_engine // 8)
+        short = max(d_engine // 8, min(1000, d_engine // 2))   # shorter than the long run
         pairs = []
         for _ in range(args.rounds):            # interleaved; the best of each
             r1 = engine_rate(n, d_engine, 1, draw="histories")
+            c1 = _CPU_LOG[(n, 1, "histories", None)]
             r2 = engine_rate(n, d_engine, 2, draw="histories")
-            pairs.append((r1, r2))
+            c2 = _CPU_LOG[(n, 2, "histories", None)]
+            pairs.append((r1, r2, c2 / c1))
             one, two = max(one, r1), max(two, r2)
             two_short = max(two_short, engine_rate(n, short, 2, draw="histories"))
         # wall = fixed + draws / rate: the fixed cost of a two-worker run (starting the
@@ -338,8 +344,10 @@ def main(argv=None):
         qp = quadprog_loop(n, d_qp)
         rows.append((n, one, two, fl, sl, qp, short, two_short, fixed, steady))
         print(f"  N={n}: done (engine {d_engine} draws x {args.rounds} rounds, SLSQP {d_slsqp}, "
-              f"quadprog {d_qp}); each round 1 core / 2 workers: "
-              + ", ".join(f"{a:,.0f} / {b:,.0f} ({b / a:.2f}x)" for a, b in pairs), flush=True)
+              f"quadprog {d_qp}); each round 1 core / 2 workers (2w/1w; CPU time 2w/1w): "
+              + ", ".join(f"{a:,.0f} / {b:,.0f} ({b / a:.2f}x; {c:.2f})" for a, b, c in pairs),
+              flush=True)
+        rounds_by_cpu[n] = pairs
     print()
     head = ("N", "engine 1 core", "engine 2 workers", "2w/1w", "CPU us/draw 1w / 2w",
             "2 workers, short run", "2w start-up (s)", "2w steady", "steady/1w",
@@ -368,6 +376,14 @@ def main(argv=None):
     print(" 2w start-up and 2w steady: wall = start-up + draws / steady rate, solved from the")
     print(" long and the short two-worker runs; the start-up is the fork, each worker's first")
     print(" chunks in memory the parent never used, and the wait for the last block)")
+    print("CPU time of the same draws, two workers against one core (a ratio above 1 is the")
+    print(" host slowing each core while both run, plus the start-up above); 2w/1w by round:")
+    for n, pairs in rounds_by_cpu.items():
+        calm = [b / a for a, b, c in pairs if c <= CALM_CPU]
+        busy = [b / a for a, b, c in pairs if c > CALM_CPU]
+        print(f"  N={n}: CPU within {CALM_CPU:.2f}x: "
+              + (", ".join(f"{r:.2f}x" for r in sorted(calm)) or "none")
+              + "; above: " + (", ".join(f"{r:.2f}x" for r in sorted(busy)) or "none"))
 
     if not args.no_moments:
         print()

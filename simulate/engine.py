@@ -287,11 +287,14 @@ def auto_block_draws(spec: "ResampleSpec") -> int:
     """Draws per block when ``block_size`` is automatic: a function of the spec alone.
 
     From a rough cost model of one draw on one core, fitted on the benchmark machine
-    (history path, T = 120: about 18, 105 and 750 microseconds at N = 10, 50 and 200
-    with one mean-variance rule; since the triangular ``Z L'`` and the other speed work a
-    draw costs about two thirds of that, so blocks hold less real work than the model
-    says, which changes no number): ``0.012 us * (T N + R' N^2) + 2 us * R'`` with ``R'``
-    the rules that use estimates (each counted three times with the attribution runs).
+    (history path, sample estimates, N from 5 to 200, T = 60, 120 and 240, one or three
+    rules, with and without the attribution runs; about 11, 65 and 510 microseconds at
+    N = 10, 50 and 200 with one mean-variance rule and T = 120; the model is within
+    0.8x-1.3x of the measured cost, except that a long-only minimum-variance rule at
+    N = 200 costs about twice what it says, and a sample covariance from fewer rows than
+    assets, whose optimisations take many more active-set steps, far more):
+    ``0.008 us * (T N + R' N^2) + 2 us * R'`` with ``R'`` the rules that use estimates
+    (each counted three times with the attribution runs).
     The block holds about :data:`BLOCK_SECONDS` of that work, in whole chunks; less when
     that leaves a study fewer than :data:`MIN_BLOCKS` blocks to share among workers, but
     never less than :data:`MIN_BLOCK_SECONDS` of work; and at most
@@ -313,7 +316,7 @@ def _draw_micros(spec: "ResampleSpec", length: Optional[int] = None) -> float:
     """Modelled microseconds of one ordinary draw on one core (see :func:`auto_block_draws`)."""
     n, t = spec.n_assets, spec.length if length is None else length
     solved = sum(1 for r in spec.rules if _uses_inputs(r)) * (3 if spec.attribution else 1)
-    return 0.012 * (t * n + max(1, solved) * n * n) + 2.0 * max(1, solved)
+    return 0.008 * (t * n + max(1, solved) * n * n) + 2.0 * max(1, solved)
 
 
 def _frontier_micros(spec: "ResampleSpec") -> float:

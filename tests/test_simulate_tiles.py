@@ -119,9 +119,9 @@ def test_retain_freed_memory_applies_once_on_glibc():
 
 
 def test_tapered_automatic_plan_changes_no_digit():
-    spec = _rich_spec(n=8, draws=2_000, sweep_lengths=(), self_check_draws=0, frontier_points=0)
+    spec = _rich_spec(n=8, draws=4_000, sweep_lengths=(), self_check_draws=0, frontier_points=0)
     sizes = [b.stop - b.start for b in block_plan(spec)]
-    assert sizes == [1000, 500, 250, 125, 125]
+    assert sizes == [2000, 1000, 500, 250, 125, 125]
     ref = _dump(run_resampling(replace(spec, block_size=CHUNK_DRAWS)))
     assert _dump(run_resampling(spec)) == ref
     assert _dump(run_resampling(spec, workers=2)) == ref
