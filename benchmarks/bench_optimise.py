@@ -1,5 +1,9 @@
 """Benchmark: long-only, fully invested mean-variance (gamma = 5) re-solved for D draws.
 
+With ``--rule min-variance`` the same problems without the means (the baselines then get
+zero means, which leaves them the minimum-variance problem); with ``--periods`` below N
+the sample covariances are singular (the kernel's proximal-point path).
+
 Each draw is a (mean, covariance) pair estimated (sample mean, sample covariance T-1) from
 a resampled history of T = 120 periods of one invented population, as the resampling
 engine produces them. Side by side in one run:
@@ -14,7 +18,8 @@ engine produces them. Side by side in one run:
 The slow baselines are timed on a subset of the draws (the table says how many) and
 their per-solve time is compared with ours. Usage::
 
-    python -m benchmarks optimise [--draws D] [--n 10,50,200] [--quadprog-subset K]
+    python -m benchmarks optimise [--draws D] [--n 10,50,200] [--periods T]
+                                  [--rule mean-variance|min-variance] [--quadprog-subset K]
                                   [--slsqp-subset K] [--seed S]
 """
 from __future__ import annotations
@@ -146,6 +151,8 @@ def main(argv=None) -> int:
     ap.add_argument("--n", default="10,50,200", help="asset counts (default 10,50,200)")
     ap.add_argument("--periods", type=int, default=120, help="history length T (default 120)")
     ap.add_argument("--gamma", type=float, default=5.0, help="risk aversion (default 5)")
+    ap.add_argument("--rule", choices=("mean-variance", "min-variance"),
+                    default="mean-variance", help="the rule solved (default mean-variance)")
     ap.add_argument("--quadprog-subset", type=int, default=2000,
                     help="problems timed with quadprog (default 2000; 200 at N >= 200)")
     ap.add_argument("--slsqp-subset", type=int, default=50,
@@ -181,7 +188,9 @@ def _run(args) -> int:
           f"{time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}")
     print("timings: CPU seconds of this process (time.process_time); BLAS limited to one "
           "thread (threadpoolctl), so every method runs on one core")
-    print(f"problem: long-only fully invested mean-variance, gamma = {args.gamma:g}; "
+    mv = args.rule == "mean-variance"
+    what = f"mean-variance, gamma = {args.gamma:g}" if mv else "minimum variance"
+    print(f"problem: long-only fully invested {what}; "
           f"{args.draws} draws of (sample mean, sample covariance) from T = {args.periods}")
     # compile (cached) outside the timing
     warm_rule = make_rule("mv", "mean-variance", {"risk_aversion": args.gamma}, 3)
@@ -192,7 +201,8 @@ def _run(args) -> int:
         seq = np.random.SeedSequence([args.seed, n])
         rng = np.random.default_rng(seq)
         mu, S = population(n, rng)
-        rule = make_rule("mv", "mean-variance", {"risk_aversion": args.gamma}, n)
+        rule = (make_rule("mv", "mean-variance", {"risk_aversion": args.gamma}, n) if mv
+                else make_rule("minv", "min-variance", {}, n))
         t_kernel = t_api = 0.0
         kkt_max = 0.0
         iters_bad = 0
@@ -210,6 +220,8 @@ def _run(args) -> int:
             if first is None:
                 first = (means, covs, X)
         means, covs, X = first
+        if not mv:
+            means = np.zeros_like(means)     # the baselines' objective: variance alone
         # independent check: multipliers re-estimated by NNLS (optimise.kkt_residuals)
         indep = max(rule.check(means[d], covs[d], X[d]).max for d in range(min(20, len(X))))
         q_sub = min(q_sub, means.shape[0])

@@ -52,6 +52,7 @@ _PIVOT_TOL = 1e-12   # relative pivot below which H_FF counts as singular
 _PROX = 1e-7         # proximal weight delta, relative to the largest diagonal entry of H
 _PROX_MAXOUTER = 5000
 _PDAS_MAXIT = 8      # subproblems the primal-dual phase may take before the primal method
+_PROX_PDAS_MAXIT = 30  # the same in each proximal-point step (see qp_solve)
 
 
 # ----------------------------------------------------------------------------------------
@@ -286,7 +287,10 @@ def qp_solve(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i)
     of strictly convex QPs ``min 1/2 x'Hx - c'x + delta/2 |x - x_k|^2``, each solved by the
     same active-set method warm-started from the last, until ``delta |x_{k+1} - x_k|`` (the
     stationarity error for the original problem) is below the tolerance. Nothing is
-    regularised in the answer: the multipliers certify the original problem.
+    regularised in the answer: the multipliers certify the original problem. When the
+    general rows are all equalities, each of those QPs first goes through the primal-dual
+    active-set phase (:func:`_pdas`, at most ``_PROX_PDAS_MAXIT`` subproblems), which gives
+    the primal method's answer in far fewer steps when it settles.
 
     Parameters
     ----------
@@ -327,12 +331,43 @@ def qp_solve(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f, work_i)
         return st, it
     hscale, gscale = _scales(H, c)
     delta = _PROX * hscale
+    m = A.shape[0]
+    equalities = _all_rows_equal(lo, hi)
+    work = _unpack(work_f, work_i, n, m)
+    vs0 = np.empty(n, dtype=np.int64)
+    rs0 = np.empty(m, dtype=np.int64)
     for outer in range(_PROX_MAXOUTER):
         for j in range(n):
             xk[j] = x[j]
-        st, it2 = _qp_core(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f,
-                           work_i, delta, xk)
-        it += it2
+        if equalities:
+            # bounds and equality rows only: the primal-dual phase first. From a start with
+            # every weight free (the usual cold point) the first step's optimum drops
+            # dozens of assets, which the primal method drops one per iteration (146
+            # iterations, 25 ms for 200 assets and a 120-row sample covariance) and the
+            # primal-dual phase several at a time (13 subproblems, 1.7 ms). When it
+            # settles, its answer is the primal method's to the bit (same final working
+            # set, same subproblem solve; see _pdas); otherwise the primal method runs
+            # from the same point.
+            for j in range(n):
+                vs0[j] = vs[j]
+            for k in range(m):
+                rs0[k] = rs[k]
+                rs[k] = -1
+            st, it2 = _pdas(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, _PROX_PDAS_MAXIT,
+                            work, delta, xk)
+            it += it2
+            if st != OK:
+                for j in range(n):
+                    x[j] = xk[j]
+                    vs[j] = vs0[j]
+                for k in range(m):
+                    rs[k] = rs0[k]
+        else:
+            st = NOT_SETTLED
+        if st != OK:
+            st, it2 = _qp_core(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxiter, work_f,
+                               work_i, delta, xk)
+            it += it2
         if st == FACTOR_SINGULAR:
             return SINGULAR, it
         if st != OK:
@@ -601,7 +636,7 @@ def _all_rows_equal(lo, hi):
     return True
 
 
-def _pdas(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxit, work, xk):
+def _pdas(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxit, work, delta, xk):
     """Primal-dual active-set iterations for a QP whose general rows are all equalities.
 
     From the working set ``vs`` (variables at a bound), each iteration solves the
@@ -619,7 +654,10 @@ def _pdas(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxit, work, xk):
 
     Parameters as :func:`qp_solve` (``x`` in: any point whose fixed entries are at
     their bounds as ``vs`` says; ``rs`` all -1: every row is an equality), except
-    ``work``: the workspace already split by :func:`_unpack` (split once per batch).
+    ``work``: the workspace already split by :func:`_unpack` (split once per batch), and
+    ``delta``, ``xk``: the proximal term ``delta/2 |x - xk|^2`` added to the objective, as
+    in :func:`_qp_core` (0 for the problem itself; the proximal-point steps of
+    :func:`qp_solve` use it).
 
     Returns
     -------
@@ -638,13 +676,13 @@ def _pdas(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, maxit, work, xk):
                 x[j] = lb[j]
             elif vs[j] > 0:
                 x[j] = ub[j]
-        nf, nr, code = _eqp(H, c, A, lo, hi, x, vs, rs, hscale, 0.0, xk,
+        nf, nr, code = _eqp(H, c, A, lo, hi, x, vs, rs, hscale, delta, xk,
                             idx, ridx, L, V, S, LS, u, t, xs, nu, r1, r2)
         if code != 0:
             return NOT_SETTLED, it
         for a in range(nf):
             x[idx[a]] = xs[a]
-        _gradient(H, c, A, x, nu, ridx, nr, 0.0, xk, g)
+        _gradient(H, c, A, x, nu, ridx, nr, delta, xk, g)
         moved = False
         for i in range(n):
             if vs[i] == 0:
@@ -743,7 +781,7 @@ def qp_batch(H, c, A, lo, hi, lb, ub, x0, warm, rescale_row, maxiter, X, Z, NU, 
                 for k in range(m):
                     rs[k] = -1
                 st, it = _pdas(H[d], c[d], A[d], lo[d], hi[d], lb, ub, x, vs, rs,
-                               Z[d], NU[d], _PDAS_MAXIT, work, xk0)
+                               Z[d], NU[d], _PDAS_MAXIT, work, 0.0, xk0)
                 if st != OK:
                     for j in range(n):
                         x[j] = x0[d, j]

@@ -267,7 +267,11 @@ class ResampleSpec:
 #: 2: the moments path's Wishart matrix from the triangles alone (``wishart_triangular``).
 #: 3: normal and Student-t histories of 40 assets or more form ``Z L'`` by a triangular
 #: product (``generators.times_factor_t``).
-NUMERICS = 3
+#: 4: the QP kernel's proximal-point steps (singular covariances) try the primal-dual
+#: active-set phase first. Every check gave the same bits (its answer is the primal
+#: method's when both end on the same working set), but a degenerate problem could end on
+#: another working set, so older blocks are not merged with newer ones.
+NUMERICS = 4
 
 #: Seconds of one core's work an automatic block aims at: long enough that handing a block
 #: to a worker and merging its result (about 1 ms) are small beside it, short enough that
