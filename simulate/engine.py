@@ -295,8 +295,8 @@ def auto_block_draws(spec: "ResampleSpec") -> int:
     rules, with and without the attribution runs; about 11, 65 and 510 microseconds at
     N = 10, 50 and 200 with one mean-variance rule and T = 120; the model is within
     0.8x-1.3x of the measured cost, except that a long-only minimum-variance rule at
-    N = 200 costs about twice what it says, and a sample covariance from fewer rows than
-    assets, whose optimisations take many more active-set steps, far more):
+    N = 200 costs about twice what it says, and with a sample covariance from fewer rows
+    than assets, whose optimisations take the proximal-point path, about five times):
     ``0.008 us * (T N + R' N^2) + 2 us * R'`` with ``R'`` the rules that use estimates
     (each counted three times with the attribution runs).
     The block holds about :data:`BLOCK_SECONDS` of that work, in whole chunks; less when
