@@ -403,13 +403,18 @@ def test_plain_twin_on_a_singular_problem():
         np.testing.assert_allclose(a, b, rtol=1e-10, atol=1e-14)
 
 
-def _prox_solve(fn, H, c, A, lo, hi, lb, ub, x0):
+def _cold_state(H, A, lo, hi, lb, ub, x0):
+    """Workspace, point, working sets and multiplier arrays of a solve from ``x0``."""
     n, m = H.shape[0], A.shape[0]
     work_f, work_i = K.make_work(n, m)
     x = x0.copy()
     vs, rs = np.zeros(n, np.int64), np.zeros(m, np.int64)
     K._states(x, A, lo, hi, lb, ub, vs, rs)
-    z, nu = np.zeros(n), np.zeros(m)
+    return work_f, work_i, x, vs, rs, np.zeros(n), np.zeros(m)
+
+
+def _prox_solve(fn, H, c, A, lo, hi, lb, ub, x0):
+    work_f, work_i, x, vs, rs, z, nu = _cold_state(H, A, lo, hi, lb, ub, x0)
     st_, it = fn(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, 5000, work_f, work_i)
     return st_, it, x, z, nu, vs
 
@@ -581,11 +586,7 @@ def _cold_solve(fn_core, H, c, A, lo, hi, lb, ub, x0, maxiter=500, pdas=False):
     """One problem from the cold point: the primal active-set core, or the primal-dual
     phase (returns None when it did not settle)."""
     n, m = H.shape[0], A.shape[0]
-    work_f, work_i = K.make_work(n, m)
-    x = x0.copy()
-    vs, rs = np.zeros(n, np.int64), np.zeros(m, np.int64)
-    K._states(x, A, lo, hi, lb, ub, vs, rs)
-    z, nu = np.zeros(n), np.zeros(m)
+    work_f, work_i, x, vs, rs, z, nu = _cold_state(H, A, lo, hi, lb, ub, x0)
     if pdas:
         rs[:] = -1
         st_, _ = K._pdas(H, c, A, lo, hi, lb, ub, x, vs, rs, z, nu, K._PDAS_MAXIT,
